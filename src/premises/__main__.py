@@ -1,0 +1,5 @@
+"""``python -m premises``."""
+
+from premises.cli import entry
+
+entry()

@@ -1,0 +1,37 @@
+"""Writing outputs without ever leaving a half-written file.
+
+Everything the tool writes goes to a temporary file in the destination folder
+and is renamed into place (``os.replace`` is atomic on POSIX and Windows), so a
+failure or an interrupt leaves the previous output intact.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+
+__all__ = ["atomic_write_bytes", "atomic_write_text"]
+
+
+def atomic_write_bytes(path: Path, data: bytes) -> None:
+    """Write ``data`` to ``path`` atomically, creating parent folders."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            handle.write(data)
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        raise
+
+
+def atomic_write_text(path: Path, text: str) -> None:
+    """Write UTF-8 ``text`` to ``path`` atomically (newlines kept as given)."""
+    atomic_write_bytes(path, text.encode("utf-8"))
