@@ -357,6 +357,7 @@ def analyse_block(
         order=spec.order,
         weights=spec.weights,
         detail=spec.detail,
+        analysed_ids=outcome.ids,
     )
 
 

@@ -39,6 +39,9 @@ def _add_common(p: argparse.ArgumentParser) -> None:
     p.add_argument("--max-data-bytes", type=int, default=2 * 1024**3, help="largest data file read (default 2 GiB)")
     p.add_argument("--templates", type=Path, action="append", default=[], help="folder of templates overriding the shipped ones")
     p.add_argument("--debug", action="store_true", help="show the traceback of an internal error")
+    p.add_argument("--no-cache", action="store_true", help="neither read nor write the result store (same output, no change log)")
+    p.add_argument("--cache-dir", type=Path, help="result store folder (default: .premises/ in the project root)")
+    p.add_argument("--tolerance", type=_tolerance, default=0.5, help="change log: list coefficients that moved by more than this many SEs (default 0.5)")
 
 
 def _add_check(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
@@ -55,8 +58,21 @@ def _options(args: argparse.Namespace, **extra: object):  # type: ignore[no-unty
         allow_outside_data=args.allow_outside_data,
         max_data_bytes=args.max_data_bytes,
         template_dirs=tuple(p.resolve() for p in args.templates),
+        use_cache=not getattr(args, "no_cache", False),
+        cache_dir=args.cache_dir.resolve() if getattr(args, "cache_dir", None) else None,
+        change_tolerance=getattr(args, "tolerance", 0.5),
         **extra,  # type: ignore[arg-type]
     )
+
+
+def _tolerance(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number of standard errors, got {text!r}") from None
+    if not value >= 0:
+        raise argparse.ArgumentTypeError(f"the tolerance must be zero or more, got {text!r}")
+    return value
 
 
 def _run_render(args: argparse.Namespace) -> int:
@@ -82,7 +98,198 @@ def _run_check(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-COMMANDS: tuple[Callable[[argparse._SubParsersAction], None], ...] = (_add_render, _add_check)  # type: ignore[type-arg]
+def _add_filter(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser("filter", help="answer a request of the Lua filter (request Markdown on stdin, reply on stdout)")
+    p.add_argument("--protocol", type=int, required=True, help="protocol the filter speaks; must match the package")
+    p.add_argument("--flavor", choices=("quarto", "pandoc", "gfm"), default="pandoc", help="Markdown dialect of the sections")
+    p.add_argument("--base-dir", type=Path, default=Path("."), help="the document's folder (data paths and figures)")
+    p.add_argument("--input", dest="input_name", default="-", help="the document's path as pandoc named it (- for stdin)")
+    p.add_argument("--on-error", choices=("fail", "warn"), default="fail", help="warn: a failed block becomes a warning callout")
+    _add_common(p)
+    p.set_defaults(run=_run_filter)
+
+
+def _run_filter(args: argparse.Namespace) -> int:
+    from premises.errors import PremisesError
+    from premises.quarto import run_filter
+
+    request = sys.stdin.buffer.read().decode("utf-8")
+    try:
+        reply = run_filter(
+            request,
+            protocol=args.protocol,
+            flavor=args.flavor,
+            base_dir=args.base_dir,
+            input_name=args.input_name,
+            on_error=args.on_error,
+            options=_options(args),
+        )
+    except PremisesError as exc:
+        # The filter shows stdout in its error; pandoc would print stderr a second time.
+        sys.stdout.buffer.write(f"premises: {exc.message}\n".encode())
+        return exc.exit_code
+    sys.stdout.buffer.write(reply.encode("utf-8"))
+    return EXIT_OK
+
+
+def _add_lua_filter(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser("lua-filter", help="print the path of the packaged premises.lua (for pandoc --lua-filter)")
+    p.set_defaults(run=_run_lua_filter)
+
+
+def _run_lua_filter(args: argparse.Namespace) -> int:
+    from premises.quarto import lua_filter_path
+
+    print(lua_filter_path())
+    return EXIT_OK
+
+
+def _add_quarto(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser("quarto", help="Quarto helpers: install the extension, pre-render check")
+    inner = p.add_subparsers(dest="quarto_command", metavar="ACTION")
+    install = inner.add_parser("install", help="copy the premises extension into DIR/_extensions/premises")
+    install.add_argument("directory", type=Path, nargs="?", default=Path("."), help="project folder (default: .)")
+    install.set_defaults(run=_run_quarto_install)
+    pre = inner.add_parser("prerender", help="check every block of the files Quarto is about to render (project: pre-render:)")
+    _add_common(pre)
+    pre.set_defaults(run=_run_quarto_prerender)
+    p.set_defaults(run=_run_quarto_missing)
+
+
+def _run_quarto_missing(args: argparse.Namespace) -> int:
+    print("premises quarto: choose an action: install [DIR] or prerender (see premises quarto --help).", file=sys.stderr)
+    return EXIT_INPUT
+
+
+def _run_quarto_install(args: argparse.Namespace) -> int:
+    from premises.quarto import install_extension
+
+    target = install_extension(args.directory)
+    print(f"installed the premises {__version__} extension in {target}; enable it with filters: [premises]")
+    return EXIT_OK
+
+
+def _run_quarto_prerender(args: argparse.Namespace) -> int:
+    import os
+
+    from premises.quarto import prerender, project_inputs, quiet_from_env
+
+    paths = project_inputs(os.environ, Path.cwd())
+    echo = None if quiet_from_env() else print
+    report = prerender(paths, _options(args), echo=echo)
+    for error in report.errors:
+        print(f"premises: {error.message}", file=sys.stderr)
+    if report.errors:
+        print(f"premises: {len(report.errors)} document(s) have a block that cannot render; nothing was rendered.", file=sys.stderr)
+        return max(error.exit_code for error in report.errors)
+    return EXIT_OK
+
+
+def _add_notebook(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser("notebook", help="write a copy of a notebook with each block followed by its section")
+    p.add_argument("notebook", type=Path)
+    p.add_argument("-o", "--output", type=Path, help="output notebook (default: <stem>.premises.ipynb beside it)")
+    p.add_argument("--flavor", choices=("gfm", "quarto"), default="gfm", help="gfm reads well in Jupyter; quarto for rendering with Quarto")
+    p.add_argument("--detail", choices=("brief", "full"), help="override every block's detail")
+    _add_common(p)
+    p.set_defaults(run=_run_notebook)
+
+
+def _run_notebook(args: argparse.Namespace) -> int:
+    from premises.notebooks import render_notebook
+
+    done = render_notebook(args.notebook, args.output, _options(args, flavor=args.flavor, detail=args.detail))
+    print(f"wrote {done.output} ({len(done.results)} block{'s' if len(done.results) != 1 else ''}, {done.cells_written} cells)")
+    return EXIT_OK
+
+
+def _add_status(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser("status", help="say whether each block's rendered section is current, stale (and why) or never rendered; exit 3 if any is not current")
+    p.add_argument("documents", type=Path, nargs="+")
+    p.add_argument("--flavor", choices=("quarto", "pandoc", "gfm"), help="flavor to check against (default: that of the last render)")
+    p.add_argument("--detail", choices=("brief", "full"), help="detail to check against (default: that of the last render)")
+    _add_common(p)
+    p.set_defaults(run=_run_status)
+
+
+def _run_status(args: argparse.Namespace) -> int:
+    from premises.staleness import block_status
+
+    options = _options(args, detail=args.detail)
+    code = EXIT_OK
+    for document in args.documents:
+        for status in block_status(document, options, flavor=args.flavor):
+            why = f" ({'; '.join(status.reasons)})" if status.reasons else ""
+            print(f"{document}: {status.block}: {status.state}{why}")
+            if status.state != "current":
+                code = EXIT_STALE
+    return code
+
+
+def _add_diff(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser("diff", help="print each block's change log: what changed at its last render, against the one before")
+    p.add_argument("document", type=Path)
+    p.add_argument("--block", help="only this block id")
+    p.add_argument("--json", dest="as_json", action="store_true", help="print the change logs as JSON")
+    _add_common(p)
+    p.set_defaults(run=_run_diff)
+
+
+def _run_diff(args: argparse.Namespace) -> int:
+    import json
+
+    from premises.changes import format_change_log
+    from premises.staleness import block_status, recorded_changes
+
+    options = _options(args)
+    found = recorded_changes(args.document, options, args.block)
+    if args.as_json:
+        print(json.dumps({block: dict(last.change_log) if last else None for block, last in found}, indent=2, ensure_ascii=False))
+        return EXIT_OK
+    stale = {s.block for s in block_status(args.document, options) if s.state == "stale"}
+    for block, last in found:
+        if last is None:
+            print(f"{block}: never rendered with the result store")
+            continue
+        head = f"{block}: " + ("changes at the last render" if last.change_log else "no changes recorded (first render, or nothing changed since)")
+        print(head + (" -- its inputs changed since; render again to update" if block in stale else ""))
+        for line in format_change_log(last.change_log):
+            print(f"  {line}")
+    return EXIT_OK
+
+
+def _add_ledger(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    p = sub.add_parser("ledger", help="export excluded and missing rows (--csv) or per-observation diagnostics (--diagnostics)")
+    p.add_argument("document", type=Path)
+    p.add_argument("--block", help="only this block id")
+    p.add_argument("--csv", dest="csv_path", type=Path, help="write every excluded or missing row with its rule, reason and diagnostics")
+    p.add_argument("--diagnostics", type=Path, help="write fitted, residual, leverage, studentized, Cook's D, DFFITS, DFBETAS of every analysed row (.csv or .parquet)")
+    _add_common(p)
+    p.set_defaults(run=_run_ledger)
+
+
+def _run_ledger(args: argparse.Namespace) -> int:
+    from premises.staleness import diagnostics_rows, ledger_rows, write_table
+
+    if args.csv_path is None and args.diagnostics is None:
+        print("premises ledger: give --csv OUT and/or --diagnostics OUT.", file=sys.stderr)
+        return EXIT_INPUT
+    options = _options(args)
+    if args.csv_path is not None:
+        columns, rows = ledger_rows(args.document, options, args.block)
+        write_table(columns, rows, args.csv_path)
+        print(f"wrote {args.csv_path} ({len(rows)} row{'s' if len(rows) != 1 else ''} excluded or missing)")
+    if args.diagnostics is not None:
+        columns, rows = diagnostics_rows(args.document, options, args.block)
+        write_table(columns, rows, args.diagnostics)
+        print(f"wrote {args.diagnostics} ({len(rows)} analysed row{'s' if len(rows) != 1 else ''})")
+    return EXIT_OK
+
+
+COMMANDS: tuple[Callable[[argparse._SubParsersAction], None], ...] = (  # type: ignore[type-arg]
+    _add_render, _add_check, _add_filter, _add_lua_filter, _add_quarto, _add_notebook,
+    _add_status, _add_diff, _add_ledger,
+)
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -17,7 +17,7 @@ import scipy.special
 
 from premises.errors import ModelError, SpecError
 from premises.formula import Design
-from premises.influence import Influence, compute_influence
+from premises.influence import LEVERAGE_ONE, Influence, compute_influence
 from premises.lsq import ScaledQR, factorise, scaled_solve
 
 __all__ = [
@@ -25,7 +25,6 @@ __all__ = [
     "FitResult",
     "Influence",
     "compute_influence",
-    "condition_number",
     "fit_model",
     "robust_cov",
     "scaled_solve",
@@ -47,17 +46,22 @@ class FitResult:
     resid: np.ndarray
     """(n,) raw residuals y - fitted."""
     fitted: np.ndarray
+    """(n,) fitted values, y - resid."""
     weights: np.ndarray | None
     """(n,) WLS weights, or None for OLS."""
     sigma2: float
     """Residual variance, RSS/(n - p) (weighted for WLS)."""
     df_resid: float
+    """n - p."""
     rank: int
+    """Always p: a rank-deficient design is refused, never silently reduced."""
     condition_number: float
     """Condition number of the column-scaled (not centred) design (BKW 1980)."""
     r_squared: float
+    """Centred (weighted) when the columns span a constant, uncentred otherwise (as statsmodels)."""
     r_squared_adj: float
     f_statistic: float | None
+    """F test of every non-intercept coefficient; None for an intercept-only model."""
     f_p: float | None
     xtx_inv: np.ndarray
     """(p, p) (X'WX)^-1 in the user's parameterisation."""
@@ -119,7 +123,7 @@ def fit_model(design: Design, weights: np.ndarray | None = None) -> FitResult:
     >>> d = Design("y ~ x", "y", ("y",), ("x",), 2 * x + 1 + [0, .1, -.1, 0, 0], X,
     ...            ("Intercept", "x"), (("Intercept", 0, 1), ("x", 1, 2)),
     ...            (("Intercept", ()), ("x", ("x",))), True)
-    >>> round(fit_model(d).params[1], 6)
+    >>> round(float(fit_model(d).params[1]), 6)
     1.99
     """
     x = np.asarray(design.X, dtype=float)
@@ -134,7 +138,7 @@ def fit_model(design: Design, weights: np.ndarray | None = None) -> FitResult:
     rss = float(resid_w @ resid_w)
     sigma2 = rss / df_resid
     xtx_inv = factor.xtx_inv()
-    centred = factor.intercept_index is not None
+    centred = factor.spans_constant()
     tss = _total_ss(y, w, centred)
     r_squared = 1.0 - rss / tss
     # Adjusted R^2 and the F test of every non-intercept coefficient, as in
@@ -152,7 +156,7 @@ def fit_model(design: Design, weights: np.ndarray | None = None) -> FitResult:
         sigma2=sigma2,
         df_resid=float(df_resid),
         rank=p,
-        condition_number=condition_number(x, factor.sqrt_w),
+        condition_number=factor.condition_number(),
         r_squared=r_squared,
         r_squared_adj=1.0 - (n - k_constant) / df_resid * (1.0 - r_squared),
         f_statistic=f_statistic,
@@ -168,6 +172,10 @@ def fit_model(design: Design, weights: np.ndarray | None = None) -> FitResult:
 def _check_values(design: Design, x: np.ndarray, y: np.ndarray) -> None:
     """Refuse shapes, non-finite values and a constant outcome before any arithmetic."""
     n, p = x.shape
+    if p == 0:
+        raise ModelError(
+            "The model has no parameters to estimate.", hint="Add an intercept or a predictor."
+        )
     if y.shape != (n,):
         raise ModelError(f"The outcome has {y.size} values but the design has {n} rows.")
     if n <= p:
@@ -182,7 +190,7 @@ def _check_values(design: Design, x: np.ndarray, y: np.ndarray) -> None:
     if bad:
         listed = ", ".join(f"'{name}'" for name in bad)
         raise ModelError(
-            f"{listed} contain infinite or missing values after the transforms.",
+            f"There are infinite or missing values in {listed} after the transforms.",
             hint="A log of zero or a division by zero gives infinity; exclude or fix those rows.",
         )
     if np.ptp(y) == 0:
@@ -203,7 +211,8 @@ def _check_weights(weights: np.ndarray | None, n: int) -> np.ndarray | None:
     bad = np.flatnonzero(~(np.isfinite(w) & (w > 0)))
     if bad.size:
         raise ModelError(
-            f"{bad.size} weights are zero, negative or not finite (first at row {bad[0] + 1}: "
+            f"{bad.size} weights are zero, negative or not finite (first in analysed row "
+            f"{bad[0] + 1}: "
             f"{w[bad[0]]!r}); WLS weights must be positive and finite.",
             hint="Exclude those rows or choose another weights column.",
         )
@@ -227,19 +236,6 @@ def _overall_f(
         return float("inf"), 0.0
     f = (ss_model / df_model) / (rss / df_resid)
     return float(f), float(scipy.special.fdtrc(df_model, df_resid, f))
-
-
-def condition_number(x: np.ndarray, sqrt_w: np.ndarray | None = None) -> float:
-    """Largest over smallest singular value of the design with unit-length columns, not centred.
-
-    The scaling, and leaving the intercept in, follow Belsley, Kuh & Welsch
-    (1980, §3.3). Computed from the p x p triangular factor, so O(n p^2).
-    """
-    xs = x if sqrt_w is None else x * sqrt_w[:, None]
-    norms = np.linalg.norm(xs, axis=0)
-    r = np.linalg.qr(xs / np.where(norms > 0, norms, 1.0), mode="r")
-    sv = np.linalg.svd(r, compute_uv=False)
-    return float(sv[0] / sv[-1]) if sv[-1] > 0 else float("inf")
 
 
 def robust_cov(fit: FitResult, kind: str, groups: np.ndarray | None = None) -> np.ndarray:
@@ -287,13 +283,15 @@ def robust_cov(fit: FitResult, kind: str, groups: np.ndarray | None = None) -> n
     if label == "cluster":
         return _cluster_cov(rows, u, groups, n, p)
     u2 = u**2
-    with np.errstate(divide="ignore", invalid="ignore"):
-        if label == "hc1":
-            u2 = u2 * n / (n - p)  # degrees-of-freedom scaling (Hinkley 1977)
-        elif label == "hc2":
-            u2 = u2 / (1.0 - factor.hat)
-        elif label == "hc3":
-            u2 = u2 / (1.0 - factor.hat) ** 2  # jackknife-like (MacKinnon & White 1985)
+    if label == "hc1":
+        # Degrees-of-freedom scaling (Hinkley 1977, as cited by MacKinnon & White 1985).
+        u2 = u2 * n / (n - p)
+    elif label in ("hc2", "hc3"):
+        # Undefined (0/0) where a point alone fixes a coefficient (h_ii = 1).
+        one_minus_h = np.where(factor.hat > LEVERAGE_ONE, np.nan, 1.0 - factor.hat)
+        # HC2: unbiased under homoscedasticity; HC3: jackknife approximation
+        # (MacKinnon & White 1985).
+        u2 = u2 / (one_minus_h if label == "hc2" else one_minus_h**2)
     return np.asarray((rows * u2[:, None]).T @ rows)
 
 

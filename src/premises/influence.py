@@ -28,9 +28,11 @@ __all__ = ["LEVERAGE_ONE", "Influence", "compute_influence"]
 LEVERAGE_ONE = 1.0 - 1e-10
 """Leverage above this counts as 1: the point alone determines a coefficient.
 
-Rounding leaves h_ii = 1 +- a few eps (statsmodels reports 1.0000000000000002
-for Anscombe's set IV); 1e-10 is far above rounding and far below any leverage
-a point that does not fix a coefficient can reach in double precision.
+Rounding leaves h_ii = 1 +- a few eps where it is exactly 1 (statsmodels
+reports 1.0000000000000002 for Anscombe's set IV). Above 1 - 1e-10 the computed
+1 - h_ii carries a relative error of at least eps / 1e-10 ~ 1e-6 and every
+measure divided by it is dominated by rounding, so such a point is reported as
+undefined rather than given numbers (common practice; the margin is ours).
 """
 
 

@@ -9,13 +9,14 @@ the columns would keep, so every computation here runs on
 where ``m_j`` is the (weighted) column mean when the model has an intercept
 column (else 0) and ``s_j`` makes each column unit length. With an intercept,
 the centred columns are orthogonal to ``sqrt(w)``, so the intercept separates
-out exactly. Results are mapped back to the user's parameterisation through a
-p x p matrix ``to_user``. Nothing here is n x n.
+out exactly. Results are mapped back to the user's parameterisation (slopes
+b_j = g_j / s_j, intercept a = c - sum_j m_j b_j). Nothing here is n x n.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import scipy.linalg
@@ -24,7 +25,7 @@ from premises.errors import ModelError
 
 __all__ = ["ScaledQR", "factorise", "scaled_solve"]
 
-_REFINEMENT_STEPS = 0
+_REFINEMENT_STEPS = 2
 """Steps of iterative refinement of the solution (Björck 1967); the second rarely changes it."""
 
 
@@ -33,7 +34,7 @@ class ScaledQR:
     """Pivoted thin QR of the centred, scaled, sqrt-weighted design, and the way back.
 
     Scaled parameters are ordered ``[intercept?] + non-intercept columns in user
-    order``; ``to_user`` maps them to the user's coefficients.
+    order``.
     """
 
     x: np.ndarray
@@ -58,8 +59,6 @@ class ScaledQR:
     """(n,) square roots of the WLS weights, or None for OLS."""
     sum_w: float
     """Sum of the weights (n for OLS)."""
-    to_user: np.ndarray
-    """(p, p) maps scaled parameters to the user's coefficients."""
     hat: np.ndarray
     """(n,) leverage h_ii of the (weighted) design."""
 
@@ -67,44 +66,100 @@ class ScaledQR:
     def n(self) -> int:
         return int(self.x.shape[0])
 
-    def scaled_columns(self) -> np.ndarray:
-        """Return Z, the (n, k) centred, scaled, weighted non-intercept columns."""
-        z = (self.x[:, self.other_index] - self.means) / self.scales
-        return z if self.sqrt_w is None else z * self.sqrt_w[:, None]
-
     def solve(self, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Least-squares coefficients (user parameterisation) and weighted residuals for ``y``.
 
-        The residuals ``sqrt(w) (y - X b)`` are computed on the scaled problem,
-        where they keep the digits that ``y - X @ b`` would lose.
+        Solved on the scaled problem, then refined (Björck 1967): the residuals
+        of the augmented system [I A; A' 0][r; θ] = [y; 0] are computed in
+        extended precision from the user's ``X`` and corrected with the same
+        factors. This recovers the digits that rounding Z to double loses on
+        ill-conditioned designs (NIST Wampler, Filip). The residuals come from
+        the refined system, not from ``y - X @ b``, which cancels.
+        (Where ``numpy.longdouble`` is plain double, the refinement still runs
+        but gains less.)
         """
-        yw = y if self.sqrt_w is None else y * self.sqrt_w
+        op = _ExtendedDesign(self)
+        yz, y_scale, centre = self._scaled_outcome(y)
+        # theta and the residual accumulate in extended precision so that the
+        # corrections are not rounded away before they are mapped back.
+        theta = np.zeros(op.width, dtype=np.longdouble)
+        resid = np.zeros(self.n, dtype=np.longdouble)
+        for _ in range(1 + _REFINEMENT_STEPS):
+            f = np.asarray(yz - resid - op.apply(theta), dtype=float)
+            g = np.asarray(-op.apply_t(resid), dtype=float)
+            d_theta, d_resid = self._augmented_correction(f, g)
+            theta += d_theta
+            resid += d_resid
+        coef = self._to_user_extended(theta * np.longdouble(y_scale), centre)
+        return coef, np.asarray(resid * np.longdouble(y_scale), dtype=float)
+
+    def _to_user_extended(self, theta: np.ndarray, centre: float) -> np.ndarray:
+        """Map scaled parameters (extended precision) to the user's, then round to double.
+
+        Slopes b_j = g_j / s_j; intercept a = centre + c - sum_j m_j b_j, which
+        cancels heavily when column means are large (NIST Wampler1), hence the
+        extra digits.
+        """
+        coef = np.zeros(len(self.names), dtype=np.longdouble)
+        offset = 0 if self.intercept_index is None else 1
+        slopes = theta[offset:] / self.scales.astype(np.longdouble)
+        coef[self.other_index] = slopes
+        if self.intercept_index is not None:
+            c = theta[0] / np.sqrt(np.longdouble(self.sum_w))
+            means = self.means.astype(np.longdouble)
+            coef[self.intercept_index] = np.longdouble(centre) + c - np.sum(means * slopes)
+        return np.asarray(coef, dtype=float)
+
+    def _scaled_outcome(self, y: np.ndarray) -> tuple[np.ndarray, float, float]:
+        """sqrt(w) (y - centre) / scale in extended precision, with the scale and centre."""
+        yw = y.astype(np.longdouble)
         centre = 0.0
         if self.intercept_index is not None:
-            w = None if self.sqrt_w is None else self.sqrt_w**2
-            centre = float(np.average(y, weights=w))
-            yw = yw - centre * (1.0 if self.sqrt_w is None else self.sqrt_w)
-        y_scale = float(np.linalg.norm(yw)) or 1.0
-        yz = yw / y_scale
-        z = self.scaled_columns()
-        g = np.zeros(self.r.shape[0])
-        resid = yz
-        # Iterative refinement: re-solve for the correction from the current
-        # residual with the same factorisation (Björck 1967); it recovers the
-        # digits the first solve loses on ill-conditioned designs (NIST Filip).
-        for _ in range(_REFINEMENT_STEPS + 1):
-            g_perm = scipy.linalg.solve_triangular(self.r, self.q.T @ resid, check_finite=False)
-            g[self.perm] += g_perm
-            resid = yz - z @ g
-        # The centred intercept absorbs the part of the residual along sqrt(w)
-        # that rounding left behind (exactly zero in exact arithmetic).
-        theta = np.concatenate(([centre / y_scale], g)) if self.intercept_index is not None else g
+            centre = float(np.average(y, weights=None if self.sqrt_w is None else self.sqrt_w**2))
+            yw -= centre
+        if self.sqrt_w is not None:
+            yw *= self.sqrt_w.astype(np.longdouble)
+        y_scale = float(np.sqrt(np.sum(yw * yw))) or 1.0
+        return yw / y_scale, y_scale, centre
+
+    def _unit(self) -> np.ndarray:
+        """The intercept column of the weighted design, normalised: sqrt(w) / sqrt(sum w)."""
+        sw = np.ones(self.n) if self.sqrt_w is None else self.sqrt_w
+        return np.asarray(sw / np.sqrt(self.sum_w))
+
+    def _augmented_correction(self, f: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Solve [I A; A' 0][dr; dθ] = [f; g] with A = [u, Z] ≈ [u, Q] diag(1, R P').
+
+        With A = QR: R' (Q'dr) = g, R dθ = Q'f - Q'dr, dr = f - Q Q'f + Q (Q'dr).
+        """
+        offset = 0 if self.intercept_index is None else 1
+        h = scipy.linalg.solve_triangular(
+            self.r, g[offset:][self.perm], trans="T", check_finite=False
+        )
+        qf = self.q.T @ f
+        d_theta = np.empty(len(g))
+        d_theta[offset + self.perm] = scipy.linalg.solve_triangular(
+            self.r, qf - h, check_finite=False
+        )
+        d_resid = f + self.q @ (h - qf)
+        if offset:
+            unit = self._unit()
+            uf = float(unit @ f)
+            d_theta[0] = uf - g[0]
+            d_resid += unit * (g[0] - uf)
+        return d_theta, d_resid
+
+    def spans_constant(self) -> bool:
+        """Whether the constant lies in the column space: an intercept column, or implicitly.
+
+        A full set of dummies without an intercept spans it implicitly; R^2 and
+        the F test are then centred, as statsmodels decides by a rank check.
+        """
         if self.intercept_index is not None:
-            sw = np.ones(self.n) if self.sqrt_w is None else self.sqrt_w
-            shift = float(sw @ resid) / self.sum_w
-            theta[0] += shift
-            resid = resid - shift * sw
-        return self.to_user @ theta * y_scale, resid * y_scale
+            return True
+        unit = self._unit()
+        left = unit - self.q @ (self.q.T @ unit)
+        return float(np.linalg.norm(left)) < 1e-10
 
     def scaled_inverse(self) -> np.ndarray:
         """(X~'X~)^-1 for the scaled design, in scaled parameter order."""
@@ -120,22 +175,92 @@ class ScaledQR:
         return full
 
     def xtx_inv(self) -> np.ndarray:
-        """(X'WX)^-1 in the user's parameterisation."""
-        return self.to_user @ self.scaled_inverse() @ self.to_user.T
+        """(X'WX)^-1 in the user's parameterisation.
+
+        Mapped in extended precision: the intercept's variance 1/sum(w) + m'Vm
+        cancels when column means are large.
+        """
+        ext = _map_to_user(
+            len(self.names),
+            self.intercept_index,
+            self.other_index,
+            self.means,
+            self.scales,
+            np.longdouble,
+        )
+        inverse = self.scaled_inverse().astype(np.longdouble)
+        return np.asarray(ext @ inverse @ ext.T, dtype=float)
 
     def coef_rows(self) -> np.ndarray:
         """(n, p) matrix whose row i is (X'WX)^-1 sqrt(w_i) x_i: column i of (X'WX)^-1 X'W^(1/2).
 
-        Built as Q R^-T in scaled coordinates (O(n p^2), never n x n), then mapped.
+        Built as Q R^-T in scaled coordinates and mapped (O(n p^2), never n x n):
+        slope columns are divided by s_j; the intercept column is
+        sqrt(w)/sum(w) - sum_j m_j (slope column j).
         """
         k = self.r.shape[0]
         r_inv = scipy.linalg.solve_triangular(self.r, np.eye(k), check_finite=False)
-        rows = np.empty((self.n, k))
-        rows[:, self.perm] = self.q @ r_inv.T
+        right = np.empty((k, k))
+        right[:, self.perm] = r_inv.T
+        rows = np.empty((self.n, len(self.names)))
+        rows[:, self.other_index] = self.q @ (right / self.scales)
         if self.intercept_index is not None:
             sw = np.ones(self.n) if self.sqrt_w is None else self.sqrt_w
-            rows = np.column_stack((sw / self.sum_w, rows))
-        return rows @ self.to_user.T
+            rows[:, self.intercept_index] = sw / self.sum_w - rows[:, self.other_index] @ self.means
+        return rows
+
+    def condition_number(self) -> float:
+        """Condition number of sqrt(w) X with unit-length columns, not centred (BKW 1980, §3.3).
+
+        In the orthonormal basis [sqrt(w)/sqrt(sum w), Q] the user's column j has
+        coordinates (m_j sqrt(sum w), s_j R P'e_j) and the intercept
+        (sqrt(sum w), 0), so the singular values come from a p x p matrix.
+        """
+        k = self.r.shape[0]
+        offset = 0 if self.intercept_index is None else 1
+        coords = np.zeros((k + offset, len(self.names)))
+        position = np.empty(k, dtype=np.intp)
+        position[self.perm] = np.arange(k)
+        coords[offset:, self.other_index] = self.r[:, position] * self.scales
+        if self.intercept_index is not None:
+            coords[0, self.other_index] = self.means * np.sqrt(self.sum_w)
+            coords[0, self.intercept_index] = np.sqrt(self.sum_w)
+        coords /= np.linalg.norm(coords, axis=0)
+        sv = np.linalg.svd(coords, compute_uv=False)
+        return float(sv[0] / sv[-1])
+
+
+class _ExtendedDesign:
+    """A = [u, Z] applied in extended precision from the user's X, never formed as Z."""
+
+    def __init__(self, factor: ScaledQR) -> None:
+        ld = np.longdouble
+        self.x = factor.x[:, factor.other_index].astype(ld)
+        self.inv_scales = 1 / factor.scales.astype(ld)
+        self.means = factor.means.astype(ld)
+        self.sqrt_w = None if factor.sqrt_w is None else factor.sqrt_w.astype(ld)
+        self.unit = None
+        if factor.intercept_index is not None:
+            sw = np.ones(factor.n, dtype=ld) if self.sqrt_w is None else self.sqrt_w
+            self.unit = sw / np.sqrt(ld(factor.sum_w))
+        self.width = self.x.shape[1] + (0 if self.unit is None else 1)
+
+    def apply(self, theta: np.ndarray) -> np.ndarray:
+        """A θ, with Z g = sqrt(w) (X (g / s) - m'(g / s))."""
+        offset = 0 if self.unit is None else 1
+        gs = theta[offset:] * self.inv_scales
+        out = self.x @ gs - np.sum(self.means * gs)
+        if self.sqrt_w is not None:
+            out *= self.sqrt_w
+        if self.unit is not None:
+            out += self.unit * theta[0]
+        return np.asarray(out)
+
+    def apply_t(self, r: np.ndarray) -> np.ndarray:
+        """A' r, with Z' r = (X' (sqrt(w) r) - m sum(sqrt(w) r)) / s."""
+        rw = r if self.sqrt_w is None else r * self.sqrt_w
+        zt = (rw @ self.x - self.means * np.sum(rw)) * self.inv_scales
+        return zt if self.unit is None else np.concatenate(([self.unit @ r], zt))
 
 
 def find_intercept(x: np.ndarray) -> int | None:
@@ -171,7 +296,7 @@ def factorise(x: np.ndarray, names: tuple[str, ...], weights: np.ndarray | None 
     other = np.array([j for j in range(p) if j != intercept], dtype=np.intp)
     raw = x[:, other]
     means = np.zeros(len(other))
-    if intercept is not None:
+    if intercept is not None and len(other):
         means = np.average(raw, axis=0, weights=weights)
     z = raw - means
     if sqrt_w is not None:
@@ -182,23 +307,25 @@ def factorise(x: np.ndarray, names: tuple[str, ...], weights: np.ndarray | None 
     flat = scales <= tol * raw_norms
     if np.any(flat):
         bad = [names[other[j]] for j in np.flatnonzero(flat)]
-        involved = bad if intercept is None or np.all(raw_norms[flat] == 0) else [names[intercept], *bad]
+        involved = (
+            bad if intercept is None or np.all(raw_norms[flat] == 0) else [names[intercept], *bad]
+        )
         raise _collinear_error(involved)
     z /= scales
-    q, r, perm = scipy.linalg.qr(z, mode="economic", pivoting=True, overwrite_a=True, check_finite=False)
-    _check_rank(r, perm, x, names, intercept, other, means, scales, tol)
-    to_user = _map_to_user(p, intercept, other, means, scales)
+    q, r, perm = scipy.linalg.qr(
+        z, mode="economic", pivoting=True, overwrite_a=True, check_finite=False
+    )
+    _check_rank(r, perm, names, intercept, other, means, scales, tol)
     hat = np.einsum("ij,ij->i", q, q)
     if intercept is not None:
         # The intercept column sqrt(w) is orthogonal to Z, so it adds w_i / sum(w).
         hat += (np.ones(n) if weights is None else weights) / sum_w
-    return ScaledQR(x, names, q, r, perm, intercept, other, means, scales, sqrt_w, sum_w, to_user, hat)
+    return ScaledQR(x, names, q, r, perm, intercept, other, means, scales, sqrt_w, sum_w, hat)
 
 
 def _check_rank(
     r: np.ndarray,
     perm: np.ndarray,
-    x: np.ndarray,
     names: tuple[str, ...],
     intercept: int | None,
     other: np.ndarray,
@@ -229,6 +356,13 @@ def _check_rank(
 
 
 def _collinear_error(involved: list[str]) -> ModelError:
+    """The error for an exact dependence among the named design columns."""
+    if len(involved) == 1:
+        return ModelError(
+            f"The design column '{involved[0]}' is zero in every row, so its coefficient "
+            "is not identified.",
+            hint="Remove it from the formula or check the exclusions.",
+        )
     listed = ", ".join(f"'{name}'" for name in involved)
     return ModelError(
         f"The design columns {listed} are exactly collinear (one is a linear combination "
@@ -238,18 +372,24 @@ def _collinear_error(involved: list[str]) -> ModelError:
 
 
 def _map_to_user(
-    p: int, intercept: int | None, other: np.ndarray, means: np.ndarray, scales: np.ndarray
+    p: int,
+    intercept: int | None,
+    other: np.ndarray,
+    means: np.ndarray,
+    scales: np.ndarray,
+    dtype: type[np.floating[Any]] = np.float64,
 ) -> np.ndarray:
     """The p x p matrix taking scaled parameters to the user's coefficients.
 
     Slopes: b_j = g_j / s_j. Intercept: a = c - sum_j m_j b_j.
     """
-    to_user = np.zeros((p, p))
+    to_user = np.zeros((p, p), dtype=dtype)
     offset = 0 if intercept is None else 1
-    to_user[other, offset + np.arange(len(other))] = 1.0 / scales
+    inv_scales = 1 / scales.astype(dtype)
+    to_user[other, offset + np.arange(len(other))] = inv_scales
     if intercept is not None:
-        to_user[intercept, 0] = 1.0
-        to_user[intercept, 1:] = -means / scales
+        to_user[intercept, 0] = 1
+        to_user[intercept, 1:] = -means.astype(dtype) * inv_scales
     return to_user
 
 

@@ -14,10 +14,9 @@ from pathlib import Path
 from typing import Any, Mapping, Sequence
 
 from premises._version import FORMAT_VERSION
-from premises.analysis import AnalysisOptions, analyse_block, prepare_block
 from premises.errors import Location, PandocError, SpecError
 from premises.files import atomic_write_text
-from premises.results import BlockResult, DocumentResult, to_jsonable
+from premises.results import DocumentResult, to_jsonable
 from premises.spec import BlockSpec
 
 __all__ = [
@@ -47,6 +46,12 @@ class RenderOptions:
     template_dirs: tuple[Path, ...] = ()
     cli_settings: Mapping[str, Any] = field(default_factory=dict)
     """Block keys given on the command line (highest in the merge order)."""
+    use_cache: bool = True
+    """Read and write the result store (``--no-cache`` turns it off; output bytes are the same)."""
+    cache_dir: Path | None = None
+    """The result store; None: ``.premises/`` in the project root."""
+    change_tolerance: float = 0.5
+    """Change log: coefficient moves beyond this many standard errors are listed (``--tolerance``)."""
 
 
 @dataclass(frozen=True)
@@ -57,6 +62,8 @@ class RenderedDocument:
     result: DocumentResult
     output: Path | None
     figure_dir: Path
+    blocks_json: tuple[dict[str, Any], ...] = ()
+    """Each block's result JSON (what ``--json`` writes; a cache hit has only this)."""
 
 
 def default_output(path: Path) -> Path:
@@ -111,10 +118,9 @@ def _template_dirs(spec: BlockSpec, document_dir: Path, options: RenderOptions) 
 
 def template_fingerprint(dirs: Sequence[Path]) -> str:
     """Hash of every template file that a render could read (shipped and user)."""
-    from premises import render
-
     digest = hashlib.sha256()
-    for folder in (*dirs, Path(render.__file__).parent / "templates"):
+    # The shipped templates sit beside this module; importing premises.render (jinja2) is not needed.
+    for folder in (*dirs, Path(__file__).parent / "templates"):
         for path in sorted(folder.rglob("*")) if folder.is_dir() else []:
             if path.is_file():
                 digest.update(path.relative_to(folder).as_posix().encode())
@@ -124,35 +130,34 @@ def template_fingerprint(dirs: Sequence[Path]) -> str:
 
 def render_text(text: str, document: Path, output: Path, options: RenderOptions) -> RenderedDocument:
     """Render ``text`` (the contents of ``document``) as if written to ``output``."""
+    from premises.cache import block_from_json, library_versions
     from premises.documents.markdown import splice
-    from premises.render import render_section
+    from premises.staleness import BlockJob, open_cache, render_block
 
     document_dir = document.parent
     raws, specs = parse_document(text, str(document), document_dir=document_dir, cli_settings=options.cli_settings)
     figure_dir = _figure_dir(document, output)
     rel = figure_dir.relative_to(output.parent).as_posix() if figure_dir.is_relative_to(output.parent) else figure_dir.as_posix()
-    results: list[BlockResult] = []
+    blocks_json: list[dict[str, Any]] = []
     sections: list[str] = []
+    store = open_cache(document, options) if specs else None
+    versions = library_versions() if store is not None else None
     for spec in specs:
         if options.detail:
             spec = replace(spec, detail=options.detail)
         dirs = _template_dirs(spec, document_dir, options)
-        analysis = AnalysisOptions(
-            allow_outside_data=options.allow_outside_data,
-            max_data_bytes=options.max_data_bytes,
-            template_fingerprint=template_fingerprint(dirs) + f"|flavor={options.flavor}|detail={spec.detail}",
-        )
-        result = analyse_block(spec, document_dir, figure_dir, rel, analysis)
-        results.append(result)
-        block_json = to_jsonable(result)
-        block_json["format_version"] = FORMAT_VERSION
-        sections.append(render_section(block_json, flavor=options.flavor, detail=spec.detail, template_dirs=dirs))
+        job = BlockJob(spec, document, output, figure_dir, rel, dirs, template_fingerprint(dirs))
+        block_json, section = render_block(job, options, store, versions)
+        blocks_json.append(block_json)
+        sections.append(section)
+    results = [block_from_json(b) for b in blocks_json]
     out_text = splice(text, raws, sections) if raws else text
     return RenderedDocument(
         text=out_text,
         result=DocumentResult(document=document.name, blocks=tuple(results), format_version=FORMAT_VERSION),
         output=output,
         figure_dir=figure_dir,
+        blocks_json=tuple(blocks_json),
     )
 
 
@@ -192,19 +197,23 @@ def render_file(
     text = _read_document(path)
     rendered = render_text(text, path, output, options)
     if json_path is not None:
-        write_json(rendered.result, json_path)
+        write_json(rendered.result, json_path, rendered.blocks_json)
     atomic_write_text(output, rendered.text)
     return rendered
 
 
-def write_json(result: DocumentResult, path: Path) -> None:
-    """Write the public result JSON (sorted keys, stable bytes)."""
+def write_json(result: DocumentResult, path: Path, blocks_json: Sequence[Mapping[str, Any]] = ()) -> None:
+    """Write the public result JSON (sorted keys, stable bytes); ``blocks_json`` replaces the blocks when given."""
     payload = to_jsonable(result)
+    if blocks_json:
+        payload["blocks"] = [dict(b) for b in blocks_json]
     atomic_write_text(path, json.dumps(payload, indent=2, sort_keys=True, ensure_ascii=False) + "\n")
 
 
 def check_file(path: Path, options: RenderOptions | None = None) -> list[BlockSpec]:
     """Validate every block and its data (columns, rules, formula) without fitting."""
+    from premises.analysis import AnalysisOptions, prepare_block
+
     options = options or RenderOptions()
     text = _read_document(path)
     _, specs = parse_document(text, str(path), document_dir=path.parent, cli_settings=options.cli_settings)

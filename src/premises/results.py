@@ -259,6 +259,9 @@ class BlockResult:
     detail: str = "full"
     guidelines: tuple[tuple[str, Any], ...] = ()
     change_log: tuple[tuple[str, Any], ...] = ()
+    """Differences from the block's previous render (``premises.changes``); empty on a first render."""
+    analysed_ids: tuple[str, ...] = ()
+    """Ids of the analysed rows in file order (with the ledger's removed ids: every row read)."""
 
 
 @dataclass(frozen=True, slots=True)

@@ -17,7 +17,7 @@ import difflib
 import json
 import math
 import re
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, fields, is_dataclass
 from types import MappingProxyType
 from typing import Any, Literal
@@ -28,6 +28,7 @@ from premises.config import merge_settings
 from premises.errors import Location, SpecError
 
 __all__ = [
+    "ALIASES",
     "ASSUMPTIONS",
     "KEYS",
     "BlockSpec",
@@ -382,6 +383,43 @@ KEYS: Mapping[str, Key] = MappingProxyType({key.name: key for key in _KEY_LIST})
 
 _BLOCK = Key("block", "mapping", "A premises block.", fields=_KEY_LIST)
 
+ALIASES: Mapping[str, str] = MappingProxyType(
+    {
+        # Words people reach for that spelling similarity alone would not map.
+        "exclusions": "exclude",
+        "exclusion": "exclude",
+        "excludes": "exclude",
+        "transformations": "transforms",
+        "formula": "model",
+        "dataset": "data",
+        "file": "data",
+        "path": "data",
+        "cluster": "groups",
+        "clusters": "groups",
+        "group": "groups",
+        "time": "order",
+        "standard_errors": "se",
+        "robust": "se",
+        "assumptions": "checks",
+        "name": "id",
+        "label": "id",
+        "rule": "when",
+        "condition": "when",
+        "why": "reason",
+        "operation": "op",
+        "function": "op",
+        "count": "expect",
+        "rows": "ids",
+        "cooks_distance": "cooks",
+        "hat": "leverage",
+        "level": "alpha",
+        "significance": "alpha",
+        "resolution": "dpi",
+        "filetype": "format",
+    }
+)
+"""Other names for keys, used only to suggest the right one."""
+
 # ---------------------------------------------------------------------------
 # Threshold expressions: numbers, n, p, + - * / **, sqrt(), parentheses, "2p"
 # ---------------------------------------------------------------------------
@@ -389,7 +427,8 @@ _BLOCK = Key("block", "mapping", "A premises block.", fields=_KEY_LIST)
 Expr = tuple[Any, ...]
 _EXPR_TOKEN = re.compile(
     r"\s*(?:(?P<num>(?:\d+\.?\d*|\.\d+)(?:[eE][-+]?\d+)?)|(?P<name>[A-Za-z_]\w*)"
-    r"|(?P<op>\*\*|[-+*/()^])|(?P<bad>\S))"
+    r"|(?P<op>\*\*|[-+*/()^])|(?P<bad>\S))",
+    re.ASCII,  # no Unicode digits or spaces: float() would accept some of them
 )
 _EXPR_HELP = "Expressions may use numbers, n, p, + - * / **, sqrt() and parentheses, e.g. '4/n'."
 
@@ -647,8 +686,12 @@ class _Context:
         return SpecError(problem, self.locate(path), hint)
 
 
+_YAML_BREAK = re.compile("\r\n|[\r\n\x85\u2028\u2029]")
+"""Line breaks as YAML counts them."""
+
+
 def _reject_tabs(body: str, ctx: _Context) -> None:
-    for number, text in enumerate(body.splitlines()):
+    for number, text in enumerate(_YAML_BREAK.split(body)):
         indent = text[: len(text) - len(text.lstrip(" \t"))]
         if "\t" in indent:
             raise SpecError(
@@ -687,34 +730,53 @@ def _record_lines(
             _record_lines(item, sub, ctx, lines, stack)
 
 
+def _yaml_problem(exc: yaml.MarkedYAMLError) -> str:
+    """PyYAML's context and problem as one clause ("while parsing ..., expected ...")."""
+    return ", ".join(part for part in (exc.context, exc.problem) if part) or str(exc)
+
+
+def _error_line(exc: yaml.MarkedYAMLError, body: str, ctx: _Context) -> int:
+    """Document line of a YAML error; a mark past the body's end falls back to its context."""
+    last = len(_YAML_BREAK.findall(body.rstrip("\r\n")))
+    marks = [m for m in (exc.problem_mark, exc.context_mark) if m is not None]
+    inside = [m for m in marks if m.line <= last]
+    if inside:
+        return ctx.fence_line + 1 + int(inside[0].line)
+    return ctx.fence_line + 1 + last
+
+
 def _load_yaml(body: str, ctx: _Context) -> tuple[dict[str, Any], tuple[tuple[str, int], ...]]:
     """The block's mapping and the document line of every key path."""
     _reject_tabs(body, ctx)
-    loader = yaml.SafeLoader(body)
     lines: dict[str, int] = {}
     try:
-        node = loader.get_single_node()
-        if node is not None:
-            _record_lines(node, "", ctx, lines)
-            value = loader.construct_document(node)
-        else:
+        loader = yaml.SafeLoader(body)
+        try:
+            node = loader.get_single_node()
             value = None
+            if node is not None:
+                _record_lines(node, "", ctx, lines)
+                value = loader.construct_document(node)
+        finally:
+            loader.dispose()
     except yaml.MarkedYAMLError as exc:
-        mark = exc.problem_mark or exc.context_mark
         raise SpecError(
-            f"The block is not valid YAML: {exc.problem or exc.context or exc}.",
-            Location(
-                ctx.file, ctx.fence_line + 1 + mark.line if mark else ctx.fence_line, ctx.block
-            ),
+            f"The block is not valid YAML: {_yaml_problem(exc)}.",
+            Location(ctx.file, _error_line(exc, body, ctx), ctx.block),
             "Check indentation and quoting near this line; values holding ': ' or ' #' "
             "need quotes.",
+        ) from exc
+    except yaml.reader.ReaderError as exc:
+        line = ctx.fence_line + 1 + len(_YAML_BREAK.findall(body, 0, exc.position))
+        raise SpecError(
+            f"The block holds a character YAML does not allow (code point {exc.character:#x}).",
+            Location(ctx.file, line, ctx.block),
+            "Remove the control character from this line.",
         ) from exc
     except yaml.YAMLError as exc:
         raise SpecError(
             f"The block is not valid YAML: {exc}.", Location(ctx.file, ctx.fence_line, ctx.block)
         ) from exc
-    finally:
-        loader.dispose()
     if value is None:
         raise SpecError(
             "The block is empty.",
@@ -754,14 +816,19 @@ def _show(value: Any) -> str:
     return f"a {type(value).__name__} value"
 
 
+def _number_text(value: float) -> str:
+    return str(int(value)) if float(value).is_integer() else f"{value:g}"
+
+
 def _bounds(key: Key) -> str:
-    low, high = key.low, key.high
+    low = None if key.low is None else _number_text(key.low)
+    high = None if key.high is None else _number_text(key.high)
     if low is not None and high is not None:
-        return f" between {low:g} and {high:g}" + (" (exclusive)" if key.exclusive else "")
+        return f" between {low} and {high}" + (" (exclusive)" if key.exclusive else "")
     if low is not None:
-        return f" greater than {low:g}" if key.exclusive else f" of at least {low:g}"
+        return f" greater than {low}" if key.exclusive else f" of at least {low}"
     if high is not None:
-        return f" less than {high:g}" if key.exclusive else f" of at most {high:g}"
+        return f" less than {high}" if key.exclusive else f" of at most {high}"
     return ""
 
 
@@ -933,6 +1000,15 @@ def _check_entries(key: Key, value: Any, path: str, ctx: _Context) -> list[dict[
     return entries
 
 
+def _closest(name: str, table: Mapping[str, Key]) -> str | None:
+    """The key a misspelt or differently worded ``name`` most likely meant."""
+    alias = ALIASES.get(name.lower().replace("-", "_"))
+    if alias in table:
+        return alias
+    close = difflib.get_close_matches(name, list(table), n=1)
+    return close[0] if close else None
+
+
 def _check_fields(
     key: Key, value: dict[Any, Any], path: str, ctx: _Context, owner: str
 ) -> dict[str, Any]:
@@ -943,10 +1019,8 @@ def _check_fields(
         name = str(raw_name)
         sub = f"{path}.{name}" if path else name
         if name not in table:
-            close = difflib.get_close_matches(name, list(table), n=1)
-            hint = (
-                f"Did you mean '{close[0]}'?" if close else "Valid keys: " + ", ".join(table) + "."
-            )
+            close = _closest(name, table)
+            hint = f"Did you mean '{close}'?" if close else "Valid keys: " + ", ".join(table) + "."
             raise ctx.fail(sub, f"{owner} has an unknown key '{name}'.", hint)
         checked[name] = _CHECKERS[table[name].kind](table[name], item, sub, ctx)
     return checked
@@ -1023,11 +1097,11 @@ def _attribute_layer(attrs: Mapping[str, str], ctx: _Context) -> dict[str, Any]:
     for name, text in attrs.items():
         key = KEYS.get(name)
         if key is None:
-            close = difflib.get_close_matches(name, list(KEYS), n=1)
+            close = _closest(name, KEYS)
             raise ctx.fail(
                 name,
                 f"The fence has an unknown attribute '{name}'.",
-                f"Did you mean '{close[0]}'?"
+                f"Did you mean '{close}'?"
                 if close
                 else "Fence attributes may set scalar block keys such as id or data.",
             )
@@ -1043,9 +1117,11 @@ def _attribute_layer(attrs: Mapping[str, str], ctx: _Context) -> dict[str, Any]:
 
 def _typed_attribute(key: Key, text: str) -> Any:
     """Attributes are text; read integers, numbers and booleans for keys that need them."""
-    if key.kind == "integer" and re.fullmatch(r"[-+]?\d+", text):
+    if key.kind == "integer" and re.fullmatch(r"[-+]?[0-9]+", text):
         return int(text)
-    if key.kind == "number" and re.fullmatch(r"[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?", text):
+    if key.kind == "number" and re.fullmatch(
+        r"[-+]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][-+]?[0-9]+)?", text
+    ):
         return float(text)
     if key.kind == "boolean" and text.lower() in ("true", "false"):
         return text.lower() == "true"
@@ -1077,7 +1153,7 @@ def parse_block(
     file: str | None,
     line: int,
     defaults: Mapping[str, Any] | None = None,
-    attrs: Mapping[str, str] | None = None,
+    attrs: Mapping[str, str] | Iterable[tuple[str, str]] | None = None,
     overrides: Mapping[str, Any] | None = None,
 ) -> BlockSpec:
     """Read and validate a premises block.
@@ -1094,7 +1170,8 @@ def parse_block(
         Document defaults (project settings merged with the front matter's
         ``premises:`` mapping, see :func:`premises.config.merge_settings`).
     attrs
-        Fence attributes, e.g. ``{"id": "main"}`` from ``{.premises #main}``.
+        Fence attributes, e.g. ``{"id": "main"}`` from ``{.premises #main}``; a
+        mapping or ``RawBlock.attrs`` (pairs) as it is.
     overrides
         Command-line settings, applied last.
 
@@ -1115,14 +1192,15 @@ def parse_block(
     >>> spec.se, spec.source.line_of("se")
     ('hc3', 5)
     """
-    fence_id = (attrs or {}).get("id")
+    attrs = dict(attrs or {})
+    fence_id = attrs.get("id")
     raw, key_lines = _load_yaml(body, _Context(file, line, fence_id))
     block_id = raw.get("id") if isinstance(raw.get("id"), str) else fence_id
     ctx = _Context(file, line, block_id, key_lines)
     in_fence = _Context(file, line, block_id, origin="attributes")
     layers = [
         _check_layer(defaults or {}, _Context(file, line, block_id, origin="defaults")),
-        _check_layer(_attribute_layer(attrs or {}, in_fence), in_fence),
+        _check_layer(_attribute_layer(attrs, in_fence), in_fence),
         _check_layer(raw, ctx),
         _check_layer(overrides or {}, _Context(file, line, block_id, origin="overrides")),
     ]

@@ -108,7 +108,7 @@ def check_outcome(ctx: CheckContext) -> Finding:
         )
     if distinct == 2:
         _refuse_binary(ctx)
-    name = f"fig-{ctx.spec.id}-outcome"
+    name = None  # the outcome has no figure of its own (has_figure=False)
     method = (
         f"The outcome ({design.outcome}) was inspected for binary, count and bounded values "
         "before a linear model for its mean was accepted."

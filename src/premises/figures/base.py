@@ -24,15 +24,21 @@ from premises.figures.style import LARGE_N, MAX_FLAGGED_DRAWN, MAX_LABELS
 
 __all__ = [
     "BinnedMean",
+    "bonferroni_t",
     "Cloud",
     "FlagSet",
     "bin_means",
     "choose_bin_count",
+    "cloud_words",
+    "density_note",
     "evaluate_threshold",
     "find_flags",
     "format_number",
+    "flag_sentence",
+    "join_caption",
     "make_cloud",
     "point_labels",
+    "points_word",
     "slugify",
     "threshold_value",
     "verdict_sentence",
@@ -254,6 +260,10 @@ class BinnedMean:
         return self.centre.size == 0
 
 
+QUANTILE_SAMPLE = 100_000
+"""Bin edges are quantiles of at most about this many points (an even stride)."""
+
+
 def choose_bin_count(n: int) -> int:
     """Quantile bins for n points: about 25 points per bin, 3 to 40 bins (our choice)."""
     return int(min(40, max(3, n // 25)))
@@ -283,16 +293,15 @@ def bin_means(x: np.ndarray, y: np.ndarray, bins: int | None = None) -> BinnedMe
     >>> b.mean.tolist()
     [1.0, 1.0, 1.0, 1.0]
     """
-    x = np.asarray(x, dtype=float)
-    y = np.asarray(y, dtype=float)
-    ok = np.isfinite(x) & np.isfinite(y)
-    if not ok.all():
-        x, y = x[ok], y[ok]
+    x, y = _finite_pairs(x, y)
     if x.size < 6:
         nothing = np.empty(0)
         return BinnedMean(nothing, nothing, nothing, np.empty(0, dtype=np.intp))
     k = bins or choose_bin_count(int(x.size))
-    edges = np.quantile(x, np.linspace(0.0, 1.0, k + 1))
+    # Above QUANTILE_SAMPLE points the edges come from an evenly strided subsample:
+    # bins stay close to equal-count and the cost no longer grows with n log n.
+    step = max(1, x.size // QUANTILE_SAMPLE)
+    edges = np.quantile(x[::step], np.linspace(0.0, 1.0, k + 1))
     inner = np.unique(edges[1:-1])
     if inner.size < k - 1:  # ties: maybe few distinct values
         distinct = np.unique(x)
@@ -310,6 +319,17 @@ def bin_means(x: np.ndarray, y: np.ndarray, bins: int | None = None) -> BinnedMe
         var = np.where(count > 1, sq / np.maximum(count - 1, 1), np.nan)
         se = np.sqrt(var / safe)
     return BinnedMean(centre[keep], mean[keep], se[keep], count[keep])
+
+
+def _finite_pairs(x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Contiguous float copies (or views) of x and y without non-finite pairs."""
+    x = np.ascontiguousarray(x, dtype=float)
+    y = np.ascontiguousarray(y, dtype=float)
+    ok = np.isfinite(x)
+    ok &= np.isfinite(y)
+    if not ok.all():
+        x, y = x[ok], y[ok]
+    return x, y
 
 
 # -------------------------------------------------------------------- point clouds
@@ -343,11 +363,7 @@ def make_cloud(
     The histogram is computed with one ``bincount`` over equal-width cells, O(n);
     drawing it then costs the same whatever n was.
     """
-    x = np.asarray(x, dtype=float)
-    y = np.asarray(y, dtype=float)
-    ok = np.isfinite(x) & np.isfinite(y)
-    if not ok.all():
-        x, y = x[ok], y[ok]
+    x, y = _finite_pairs(x, y)
     n = int(x.size)
     if n <= large_n:
         return Cloud(n, x, y, None, None)
@@ -376,11 +392,19 @@ def format_number(value: float | None, digits: int = 3) -> str:
         return "undefined"
     if value == 0:
         return "0"
+    if float(value).is_integer() and abs(value) < 1e6:
+        return f"{int(value):,}"
     magnitude = math.floor(math.log10(abs(value)))
     if magnitude >= 6 or magnitude < -4:
-        return f"{value:.{digits - 1}e}"
+        mantissa = value / 10.0**magnitude
+        return f"{mantissa:.{digits - 1}f} × 10{_superscript(magnitude)}"
     decimals = max(0, digits - 1 - magnitude)
     return f"{value:,.{decimals}f}"
+
+
+def _superscript(k: int) -> str:
+    """An integer exponent in Unicode superscript digits."""
+    return str(k).translate(str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹"))
 
 
 def verdict_sentence(finding: Finding) -> str:
@@ -395,22 +419,50 @@ def verdict_sentence(finding: Finding) -> str:
     return text + "."
 
 
-def flag_sentence(flags: FlagSet, shown: Sequence[str] | None = None) -> str:
-    """Alt-text clause naming the labelled flagged points."""
-    names = list(shown if shown is not None else flags.labelled)
+def flag_sentence(flags: FlagSet) -> str:
+    """Alt-text clause naming the labelled flagged points (and how many are not drawn)."""
+    names = ", ".join(flags.labelled)
     if flags.total == 0 or not names:
         return "no flagged points"
-    word = "point" if flags.total == 1 else "points"
-    listed = ", ".join(names)
-    more = flags.total - len(names)
-    tail = f" and {more} more" if more > 0 else ""
-    return f"{flags.total} flagged {word} labelled {listed}{tail}"
+    if flags.total > flags.index.size:
+        return (
+            f"{flags.total:,} flagged points, of which the {flags.index.size} most influential "
+            f"are drawn and {len(flags.labelled)} labelled: {names}"
+        )
+    more = flags.total - len(flags.labelled)
+    tail = f" and {more} more unlabelled" if more > 0 else ""
+    return f"{points_word(flags.total, 'flagged point')} labelled {names}{tail}"
+
+
+def density_note(cloud: Cloud) -> str:
+    """Caption sentence for density mode (empty for a plain scatter)."""
+    if not cloud.dense:
+        return ""
+    return (
+        f"With {cloud.n:,} points the cloud is a 2-D histogram (darker cells hold more points, "
+        "log scale); flagged points are drawn one by one on top."
+    )
+
+
+def join_caption(*sentences: str) -> str:
+    """Sentences joined by single spaces, empty ones dropped."""
+    return " ".join(s.strip() for s in sentences if s and s.strip())
 
 
 def slugify(text: str) -> str:
     """Lower-case ``[a-z0-9-]`` form of a term name, for figure ids and file names."""
     slug = re.sub(r"[^a-z0-9]+", "-", text.lower()).strip("-")
     return slug or "term"
+
+
+def cloud_words(cloud: Cloud, noun: str, against: str) -> str:
+    """Alt-text opening: 'Scatter of 180 residuals against fitted values' (or density wording)."""
+    if cloud.dense:
+        return (
+            f"Shaded 2-D histogram (log count scale) of {points_word(cloud.n, noun)} "
+            f"against {against}"
+        )
+    return f"Scatter of {points_word(cloud.n, noun)} against {against}"
 
 
 def points_word(n: int, noun: str = "point") -> str:

@@ -41,7 +41,9 @@ __all__ = [
     "draw_flagged",
     "draw_reference",
     "draw_smoother",
+    "finish_axes",
     "new_axes",
+    "place_labels",
     "render_to_file",
 ]
 
@@ -141,7 +143,8 @@ def _draw_density(ax: Axes, cloud: Cloud) -> None:
 
     assert cloud.counts is not None and cloud.extent is not None
     cmap = LinearSegmentedColormap.from_list(
-        "premises-density", [COLOURS["density_low"], COLOURS["points"], COLOURS["density_high"]]
+        "premises-density",
+        [COLOURS["density_low"], COLOURS["density_mid"], COLOURS["density_high"]],
     )
     counts = np.ma.masked_equal(cloud.counts, 0)
     ax.imshow(
@@ -157,12 +160,19 @@ def _draw_density(ax: Axes, cloud: Cloud) -> None:
     )
 
 
-def draw_smoother(ax: Axes, binned: BinnedMean, label: str = "binned mean ± 2 SE") -> None:
-    """The binned mean as a line through bin centres, with its +-2 SE band."""
+def draw_smoother(
+    ax: Axes, binned: BinnedMean, label: str = "binned mean ± 2 SE"
+) -> tuple[Any, Any] | None:
+    """The binned mean as a line through bin centres, with its +-2 SE band.
+
+    Returns the (band, line) artists so the legend can show them as one entry.
+    """
+    from matplotlib import patheffects
+
     if binned.empty:
-        return
+        return None
     ok = np.isfinite(binned.se)
-    ax.fill_between(
+    band = ax.fill_between(
         binned.centre[ok],
         binned.low[ok],
         binned.high[ok],
@@ -171,16 +181,19 @@ def draw_smoother(ax: Axes, binned: BinnedMean, label: str = "binned mean ± 2 S
         linewidth=0,
         zorder=3,
     )
-    ax.plot(
+    (line,) = ax.plot(
         binned.centre,
         binned.mean,
         color=COLOURS["smoother"],
         linewidth=1.8,
-        marker="o",
+        marker="o" if binned.centre.size <= 15 else None,
         markersize=3.0,
         label=label,
         zorder=4,
+        # A white outline keeps the line legible over a dense cloud.
+        path_effects=[patheffects.withStroke(linewidth=3.6, foreground="white")],
     )
+    return band, line
 
 
 def draw_reference(ax: Axes, y: float = 0.0, label: str | None = None) -> None:
@@ -206,27 +219,48 @@ def draw_flagged(
         facecolors="none",
         edgecolors=COLOURS["flag"],
         linewidths=1.1,
-        label=label,
         zorder=6,
     )
-    place_labels(ax, x[:MAX_LABELS], y[:MAX_LABELS], labels[:MAX_LABELS])
+    # A fixed-size stand-in, so the legend key does not take the largest point's size.
+    ax.scatter([], [], s=18.0, facecolors="none", edgecolors=COLOURS["flag"], linewidths=1.1,
+               label=label)
+    place_labels(ax, x[:MAX_LABELS], y[:MAX_LABELS], labels[:MAX_LABELS], avoid=(x, y))
 
 
-_OFFSETS: tuple[tuple[float, float, str, str], ...] = (
-    (5, 4, "left", "bottom"),
-    (5, -4, "left", "top"),
-    (-5, 4, "right", "bottom"),
-    (-5, -4, "right", "top"),
-    (0, 8, "center", "bottom"),
-    (0, -8, "center", "top"),
-)
+def _offsets() -> tuple[tuple[float, float, str, str], ...]:
+    """Candidate label offsets (points): eight directions, near first, then farther out."""
+    out: list[tuple[float, float, str, str]] = []
+    for r in (5.0, 14.0):
+        out += [
+            (r, r * 0.8, "left", "bottom"),
+            (r, -r * 0.8, "left", "top"),
+            (-r, r * 0.8, "right", "bottom"),
+            (-r, -r * 0.8, "right", "top"),
+            (r, 0.0, "left", "center"),
+            (-r, 0.0, "right", "center"),
+            (0.0, r * 1.4, "center", "bottom"),
+            (0.0, -r * 1.4, "center", "top"),
+        ]
+    return tuple(out)
 
 
-def place_labels(ax: Axes, x: np.ndarray, y: np.ndarray, labels: Sequence[str]) -> None:
+_OFFSETS = _offsets()
+Box = tuple[float, float, float, float]
+
+
+def place_labels(
+    ax: Axes,
+    x: np.ndarray,
+    y: np.ndarray,
+    labels: Sequence[str],
+    avoid: tuple[np.ndarray, np.ndarray] | None = None,
+) -> None:
     """Label points with their ids, choosing per label the offset that overlaps least.
 
-    A greedy search over six offsets with boxes estimated from the text length:
-    cheap, deterministic, and good enough for the handful of labels we allow.
+    A greedy search over sixteen offsets, with text boxes estimated from the text
+    length, that avoids earlier labels, the marked points in ``avoid`` and the
+    axes edges. Far offsets get a thin leader line. Cheap and deterministic; good
+    enough for the handful of labels we allow.
     """
     if len(labels) == 0:
         return
@@ -238,24 +272,29 @@ def place_labels(ax: Axes, x: np.ndarray, y: np.ndarray, labels: Sequence[str]) 
     height = size * 1.2 * scale
     corners = ax.transAxes.transform([(0, 0), (1, 1)])
     anchors = ax.transData.transform(np.column_stack([x, y]))
-    placed: list[tuple[float, float, float, float]] = []
-    for (px, py), text in zip(anchors, labels):
+    dot = 3.5 * scale
+    placed: list[Box] = []
+    if avoid is not None and len(avoid[0]):
+        for qx, qy in ax.transData.transform(np.column_stack(avoid)):
+            placed.append((qx - dot, qy - dot, qx + dot, qy + dot))
+    for (px, py), xi, yi, text in zip(anchors, x, y, labels):
         width = len(text) * size * 0.6 * scale
-        best: tuple[float, tuple[float, float, str, str], tuple[float, float, float, float]]
+        best: tuple[float, tuple[float, float, str, str], Box]
         best = (np.inf, _OFFSETS[0], (0.0, 0.0, 0.0, 0.0))
-        for offset in _OFFSETS:
+        for rank, offset in enumerate(_OFFSETS):
             box = _label_box(px, py, offset, width, height, scale)
             cost = sum(_overlap(box, other) for other in placed) + _outside(box, corners)
+            cost += rank * 1e-3  # ties go to the nearer, earlier offset
             if cost < best[0]:
                 best = (cost, offset, box)
-            if cost == 0:
+            if cost < 1.0:
                 break
         _, (dx, dy, ha, va), box = best
         placed.append(box)
+        far = abs(dx) > 8 or abs(dy) > 12
         ax.annotate(
             text,
-            xy=(float(ax.transData.inverted().transform((px, py))[0]),
-                float(ax.transData.inverted().transform((px, py))[1])),
+            xy=(float(xi), float(yi)),
             xytext=(dx, dy),
             textcoords="offset points",
             ha=ha,
@@ -264,18 +303,24 @@ def place_labels(ax: Axes, x: np.ndarray, y: np.ndarray, labels: Sequence[str]) 
             color=COLOURS["flag_text"],
             zorder=7,
             annotation_clip=False,
+            arrowprops=(
+                {"arrowstyle": "-", "color": COLOURS["flag_text"], "linewidth": 0.5,
+                 "shrinkA": 0, "shrinkB": 3}
+                if far
+                else None
+            ),
         )
 
 
 def _label_box(
     px: float, py: float, offset: tuple[float, float, str, str], w: float, h: float, scale: float
-) -> tuple[float, float, float, float]:
+) -> Box:
     """Display-space box (x0, y0, x1, y1) a label would take at ``offset``."""
     dx, dy, ha, va = offset
     x = px + dx * scale
     y = py + dy * scale
     x0 = {"left": x, "right": x - w, "center": x - w / 2}[ha]
-    y0 = {"bottom": y, "top": y - h}[va]
+    y0 = {"bottom": y, "top": y - h, "center": y - h / 2}[va]
     return (x0, y0, x0 + w, y0 + h)
 
 
@@ -293,8 +338,44 @@ def _outside(box: tuple[float, float, float, float], corners: Any) -> float:
     return 4.0 * ((box[2] - box[0]) * (box[3] - box[1]) - inside)
 
 
-def add_legend(ax: Axes, loc: str = "best") -> None:
-    """A small frameless legend, if anything was labelled."""
+def finish_axes(ax: Axes, title: str, smoother: tuple[Any, Any] | None = None) -> None:
+    """Title at the top left and, beneath it, the legend in rows above the plot area.
+
+    Above the axes the legend can never cover a point or a label. A smoother's
+    line and band share one legend entry.
+    """
     handles, names = ax.get_legend_handles_labels()
+    if smoother is not None:
+        band, line = smoother
+        handles = [(band, line) if h is line else h for h in handles]
+    rows = 0
     if handles:
-        ax.legend(handles, names, loc=loc, handlelength=1.6, borderaxespad=0.3)
+        ncols = _legend_columns(names, ax)
+        rows = -(-len(handles) // ncols)
+        ax.legend(
+            handles,
+            names,
+            loc="lower left",
+            bbox_to_anchor=(0.0, 1.0),
+            ncols=ncols,
+            borderaxespad=0.3,
+            borderpad=0.1,
+            handlelength=1.8,
+            columnspacing=1.4,
+            handletextpad=0.5,
+        )
+    ax.set_title(title, loc="left", pad=6.0 + 12.0 * rows)
+
+
+def _legend_columns(names: Sequence[str], ax: Axes) -> int:
+    """Most columns whose widest row still fits the axes width (text width estimated)."""
+    fig = ax.get_figure()
+    assert fig is not None
+    available = fig.get_figwidth() * 72.0 * 0.85  # points
+    widths = [len(name) * 7.5 * 0.55 + 7.5 * 3.6 for name in names]
+    for ncols in range(len(names), 0, -1):
+        rows = -(-len(names) // ncols)
+        columns = [widths[c * rows:(c + 1) * rows] for c in range(ncols)]
+        if sum(max(col) for col in columns if col) <= available:
+            return ncols
+    return 1

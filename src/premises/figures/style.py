@@ -37,13 +37,14 @@ COLOURS: dict[str, str] = {
     "flag_text": "#8C3A00",
     "undefined": "#D55E00",
     "reference": "#9E9E9E",
-    "threshold": "#6B6B6B",
+    "threshold": "#7D7D7D",
     "envelope": "#56B4E9",
     "text": "#2B2B2B",
     "spine": "#7A7A7A",
     "grid": "#E4E4E4",
-    "density_low": "#EEF1F5",
-    "density_high": "#1F3A5A",
+    "density_low": "#F1F3F6",
+    "density_mid": "#B9C3CF",
+    "density_high": "#66788E",
     "background": "#FFFFFF",
 }
 """Role -> colour. Blues and vermillion/orange from Okabe & Ito (2008); greys ours."""
@@ -64,8 +65,10 @@ LARGE_N = 20_000
 """Above this many points the cloud is drawn as a 2-D histogram image (our choice:
 by then individual markers overlap into an opaque block and cost time linear in n)."""
 
-MAX_FLAGGED_DRAWN = 400
-"""At most this many flagged points are drawn individually (the most severe first)."""
+MAX_FLAGGED_DRAWN = 60
+"""At most this many flagged points are drawn individually, the most severe first (our
+choice: at large n the Cook's 4/n rule flags about 5% of rows, and thousands of rings
+would hide the cloud)."""
 
 MAX_LABELS = 8
 """At most this many flagged points carry a text label (the most severe first)."""
