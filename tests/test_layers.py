@@ -42,8 +42,9 @@ ALLOWED: dict[str, tuple[str, ...]] = {
     "premises.guidelines": FOUNDATION + VALUES,
     "premises.render": FOUNDATION + VALUES + ("premises.numbers", "premises.guidelines"),
     "premises.cache": FOUNDATION + VALUES,
+    "premises.changes": FOUNDATION + VALUES,
 }
-TOP = ("premises.analysis", "premises.pipeline", "premises.notebooks", "premises.quarto", "premises.cli", "premises.__main__", "premises")
+TOP = ("premises.analysis", "premises.pipeline", "premises.notebooks", "premises.quarto", "premises.staleness", "premises.cli", "premises.__main__", "premises")
 
 
 def _module_name(path: Path) -> str:

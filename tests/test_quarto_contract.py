@@ -329,3 +329,61 @@ def test_quarto_renders_the_example_project(tmp_path: Path) -> None:  # pragma: 
     assert "Figure\u00a01" in html or "Figure 1" in html
     assert "callout-warning" in html
     assert list((project / "report-figures").glob("*.png"))
+
+
+# --- the filter protocol, Python side --------------------------------------------------------
+
+
+def _request(*bodies: str) -> str:
+    from premises.documents.pandoc import write_reply
+
+    # a request has the reply's shape: block N in div premises-out-N
+    return write_reply([(n, f"``` premises\n{body}```") for n, body in enumerate(bodies, start=1)])
+
+
+def test_request_and_reply_shapes() -> None:
+    from premises.documents.pandoc import read_request, write_reply
+
+    blocks = read_request(_request("id: a\n", "id: b\n"))
+    assert [(b.number, b.raw.body) for b in blocks] == [(1, "id: a\n"), (2, "id: b\n")]
+    reply = write_reply([(1, "::: {.callout-note}\nIn a callout.\n:::\n")])
+    assert reply.startswith(":::: {#premises-out-1}\n") and reply.endswith("\n::::\n")  # outer fence is longer
+    with pytest.raises(Exception, match="outside its own"):
+        read_request("``` premises\nid: a\n```\n")
+
+
+def test_filter_refuses_another_protocol(tmp_path: Path) -> None:
+    from premises.quarto import run_filter
+
+    with pytest.raises(Exception, match=r"protocol 7.*protocol 1") as caught:
+        run_filter("", protocol=7, flavor="pandoc", base_dir=tmp_path, input_name="doc.md")
+    assert caught.value.exit_code == 2  # type: ignore[attr-defined]
+
+
+def test_filter_locates_errors_in_the_users_file(project: Path) -> None:
+    from premises.quarto import run_filter
+
+    nested = "---\ntitle: T\n---\n\n- item\n\n    ```premises\n    id: nested\n    data: data/trial.csv\n    model: y ~ x\n    se: hc4\n    ```\n"
+    (project / "nested.md").write_text(nested, encoding="utf-8")
+    request = _request("id: nested\ndata: data/trial.csv\nmodel: y ~ x\nse: hc4\n")
+    with pytest.raises(Exception, match=r"^nested\.md:11: block 'nested', key 'se'"):
+        run_filter(request, protocol=1, flavor="pandoc", base_dir=project, input_name="nested.md")
+    # the front matter's defaults reach the blocks, and their errors point into it
+    front = "---\ntitle: T\npremises:\n  se: hc4\n---\n\n```premises\nid: a\ndata: data/trial.csv\nmodel: y ~ x\n```\n"
+    (project / "front.md").write_text(front, encoding="utf-8")
+    with pytest.raises(Exception, match=r"^front\.md:\d+: .*'se'") as caught:
+        run_filter(_request("id: a\ndata: data/trial.csv\nmodel: y ~ x\n"), protocol=1, flavor="pandoc", base_dir=project, input_name="front.md")
+    assert caught.value.location.line <= 5  # type: ignore[attr-defined]
+
+
+def test_filter_refuses_a_repeated_block_id(project: Path) -> None:
+    from premises.quarto import run_filter
+
+    body = "id: twice\ndata: data/trial.csv\nmodel: y ~ x\nse: hc4\n"
+    request = _request(body, body)
+    warnings: list[str] = []
+    reply = run_filter(request, protocol=1, flavor="pandoc", base_dir=project, input_name="-", on_error="warn", warn=warnings.append)
+    assert reply.count("callout-warning") == 2 and len(warnings) == 2
+    text = "id: twice\ndata: data/trial.csv\nmodel: y ~ x\n"
+    with pytest.raises(Exception, match="already used by the block in <stdin>"):
+        run_filter(_request(text, text), protocol=1, flavor="pandoc", base_dir=project, input_name="-")

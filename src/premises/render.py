@@ -296,6 +296,35 @@ def _se_ratio_range(block: Mapping[str, Any]) -> tuple[float, float] | None:
     return (min(ratios), max(ratios)) if ratios else None
 
 
+def _reported_se(block: Mapping[str, Any], coef: Mapping[str, Any]) -> float | None:
+    """The SE behind a reported coefficient's interval (robust where the block uses it)."""
+    if block.get("se_used") != "classical" and coef.get("se_robust") is not None:
+        return float(coef["se_robust"])
+    se = coef.get("se")
+    return float(se) if se is not None else None
+
+
+def _sensitivity_decimals(block: Mapping[str, Any]) -> dict[tuple[int, str], int]:
+    """Decimals for each (row, term) cell of the sensitivity table.
+
+    A cell on the reported scale (its SE within a factor of 10 of the reported
+    one) uses the coefficient table's decimals for that term, so the same
+    estimate prints the same way in both tables; a cell on another scale (a
+    log-outcome alternative) shows its own SE to two significant digits.
+    """
+    reported = {str(c["term"]): _reported_se(block, c) for c in block["coefficients"]}
+    out: dict[tuple[int, str], int] = {}
+    for i, row in enumerate(block.get("sensitivity", ())):
+        for c in row["coefficients"]:
+            term = str(c["term"])
+            lo, hi = c.get("ci_low"), c.get("ci_high")
+            se = (hi - lo) / 3.92 if lo is not None and hi is not None else c.get("se")
+            ref = reported.get(term)
+            same_scale = bool(se and ref and 0.1 <= se / ref <= 10)
+            out[(i, term)] = decimals_for_se(ref if same_scale else se)
+    return out
+
+
 def _by_term(coefficients: Sequence[Mapping[str, Any]]) -> dict[str, Mapping[str, Any]]:
     return {str(c["term"]): c for c in coefficients}
 
@@ -409,18 +438,23 @@ def _citation(origin: Any) -> str:
     return escape_markdown(re.sub(r"\s\((\d{4}[a-z]?)\)", r", \1", str(origin or "")))
 
 
-def _method_sentence(title: str, method: Any) -> str:
+_METHOD_SUBJECTS: dict[str, str] = {"influence": "The influence of single observations"}
+
+
+def _method_sentence(assumption: str, method: Any) -> str:
     """How an assumption was assessed, as one sentence (plain text, not escaped).
 
     A check may give a noun phrase ("a Q-Q plot of …") or a whole clause
     ("normality was assessed from …"); both read as a sentence.
     """
+    title = ASSUMPTION_TITLES.get(assumption, assumption.replace("-", " ").capitalize())
+    subject = _METHOD_SUBJECTS.get(assumption, title)
     text = " ".join(str(method or "").split()).rstrip(".")
     if not text:
-        return f"The method used to assess {title.lower()} was not recorded."
+        return f"The method used to assess {subject[0].lower() + subject[1:]} was not recorded."
     if re.search(r"\b(was|were|is|are)\b", text):
         return _upper_first(text) + "."
-    return f"{title} was assessed by {_phrase(text)}."
+    return f"{subject} was assessed by {_phrase(text)}."
 
 
 def _evidence(finding: Mapping[str, Any]) -> list[Mapping[str, Any]]:
@@ -472,6 +506,7 @@ _GLOBALS: dict[str, Any] = {
     "log_effects": log_effects,
     "se_data_driven": _se_data_driven,
     "se_ratio_range": _se_ratio_range,
+    "sensitivity_decimals": _sensitivity_decimals,
     "focal_terms": _focal_terms,
     "figures_for": _figures_for,
     "largest_dfbetas": _largest_dfbetas,

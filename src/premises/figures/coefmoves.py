@@ -19,6 +19,7 @@ from premises.checks.base import CheckContext
 from premises.figures.base import (
     FlagSet,
     format_number,
+    points_word,
     point_labels,
     threshold_value,
     verdict_sentence,
@@ -184,9 +185,11 @@ def describe(data: CoefficientShiftData, finding: Finding) -> tuple[str, str]:
     beyond = data.beyond
     movers = [data.labels[i] for i in range(n_obs) if beyond[i].any()]
     alt = (
-        f"Dot chart of DFBETAS for {n_obs} observations across {len(data.terms)} terms; "
-        f"the largest shift is {format_number(biggest)} SE, by {data.labels[idx[0]]} on "
-        f"{data.terms[idx[1]]}; {int(beyond.sum())} shift(s) exceed ±{format_number(data.cut)}"
+        f"Dot chart of DFBETAS for {points_word(n_obs, 'observation')} across "
+        f"{points_word(len(data.terms), 'model column')}; the largest shift is "
+        f"{format_number(biggest)} SE, by {data.labels[idx[0]]} on {data.terms[idx[1]]}; "
+        f"{points_word(int(beyond.sum()), 'shift')} "
+        f"{'exceeds' if int(beyond.sum()) == 1 else 'exceed'} ±{format_number(data.cut)}"
     )
     alt += f", by {', '.join(movers)}." if movers else "."
     return caption, alt

@@ -192,7 +192,10 @@ def draw(data: CollinearityData, fig: Figure) -> None:
     ax.set_yticks(rows, names)
     ax.set_ylim(-0.7, len(data.terms) - 0.3)
     if data.log_scale:
+        from matplotlib.ticker import FuncFormatter
+
         ax.set_xscale("log")
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: format_number(v)))
     top = max(float(np.nanmax(data.values)), data.threshold)
     ax.set_xlim(0.9 if data.log_scale else 0.0, top * (2.0 if data.log_scale else 1.15))
     label = "Variance inflation factor"

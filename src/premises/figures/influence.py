@@ -28,6 +28,7 @@ from premises.figures.base import (
     join_caption,
     make_cloud,
     point_labels,
+    points_word,
     threshold_value,
     verdict_sentence,
 )
@@ -221,18 +222,25 @@ def describe(data: InfluenceData, finding: Finding) -> tuple[str, str]:
         f"({format_number(data.t_cut)}); points beyond both move the fit most. "
     )
     if data.undefined_x.size:
+        names = ", ".join(data.undefined_labels)
         caption += (
-            f"{len(data.undefined_labels)} point(s) with leverage 1 "
-            f"({', '.join(data.undefined_labels)}) alone determine a coefficient; their "
-            "residual and Cook's distance are undefined. "
+            f"The point with leverage 1 ({names}) alone determines a coefficient; its "
+            "residual and Cook's distance are undefined, so it is drawn as an open diamond. "
+            if len(data.undefined_labels) == 1
+            else f"The {len(data.undefined_labels)} points with leverage 1 ({names}) each alone "
+            "determine a coefficient; their residuals and Cook's distances are undefined, so "
+            "they are drawn as open diamonds. "
         )
     caption = join_caption(caption, density_note(data.cloud), verdict_sentence(finding))
-    shape = cloud_words(data.cloud, "point", "leverage (x) and studentized residual (y)")
+    shape = cloud_words(data.cloud, "studentized residual", "leverage")
     alt = (
         f"{shape}; leverage runs up to {format_number(data.leverage_max)}, the largest "
         f"Cook's distance is {format_number(data.cooks_max)} (cut-off "
         f"{format_number(data.cooks_cut)}); {flag_sentence(data.flags)}"
     )
     if data.undefined_x.size:
-        alt += f"; {len(data.undefined_labels)} point(s) with leverage 1 shown as open diamonds"
+        alt += (
+            f"; {points_word(len(data.undefined_labels), 'point')} with leverage 1 "
+            f"({', '.join(data.undefined_labels)}) shown as open diamonds on the zero line"
+        )
     return caption, alt + "."
