@@ -157,7 +157,7 @@ def test_last_render_round_trip_and_malformed_records(tmp_path: Path) -> None:
         parts=PARTS,
         result={"id": "b", "change_log": {"rows_added": ["p1"]}},
         section=SECTION,
-        change_log=(("rows_added", ["p1"]), ("compared_with", "x")),
+        change_log=(("rows_added", ["p1"]), ("previous_fingerprint", "x")),
         options={"flavor": "quarto", "output": "report.premises.md"},
     )
     store.write_last("chapters/report.qmd", "b", last)
@@ -193,3 +193,15 @@ def test_cache_and_changes_import_no_heavy_library() -> None:
     env = {**os.environ, "PYTHONPATH": str(SRC)}
     loaded = set(subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, env=env).stdout.split())
     assert not {"numpy", "pandas", "scipy", "statsmodels", "matplotlib", "jinja2"} & loaded
+
+
+def test_temporary_folders_left_by_a_dead_render_are_swept(tmp_path: Path) -> None:
+    store = BlockCache(tmp_path)
+    old = tmp_path / "blocks" / ".tmp-deadbeef0000-x"
+    young = tmp_path / "blocks" / ".tmp-deadbeef0001-y"
+    for folder in (old, young):
+        (folder / "figures").mkdir(parents=True)
+    os.utime(old, (0, 0))
+    store.store(PARTS.key(), {"id": "b"}, SECTION, {})
+    assert not old.exists() and young.exists()  # a young one may belong to a render still running
+

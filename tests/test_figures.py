@@ -21,14 +21,23 @@ import pytest
 
 from premises.checks.base import CheckContext
 from premises.errors import DataError, SpecError
-from premises.figures import FIGURE_KINDS, draw_figures, find_flags, plan_figures
-from premises.figures import collinearity, independence, normality, partial, variance
+from premises.figures import (
+    FIGURE_KINDS,
+    collinearity,
+    draw_figures,
+    find_flags,
+    independence,
+    normality,
+    partial,
+    plan_figures,
+    variance,
+)
 from premises.figures.base import bin_means, evaluate_threshold, make_cloud
 from premises.figures.layers import render_to_file
 from premises.figures.style import COLOURS, LARGE_N, MAX_QUANTILES
 from premises.fit import FitResult, Influence
 from premises.formula import Design
-from premises.results import FigureRef, FlaggedPoint, Finding, Statistic
+from premises.results import FigureRef, Finding, FlaggedPoint, Statistic
 from premises.spec import BlockSpec, FigureOptions
 
 DATA = Path(__file__).parent / "data"
@@ -93,16 +102,30 @@ def _statsmodels_fit(design: Design) -> tuple[FitResult, Influence]:
     dfbetas = shift / (s_i[:, None] * np.sqrt(np.diag(xtx_inv))[None, :])
     dfbetas[undefined] = np.nan
     fit = FitResult(
-        design=design, params=res.params, cov=res.cov_params(), resid=res.resid,
-        fitted=res.fittedvalues, weights=None, sigma2=float(res.scale),
-        df_resid=float(res.df_resid), rank=int(res.df_model + 1), condition_number=1.0,
-        r_squared=float(res.rsquared), r_squared_adj=float(res.rsquared_adj),
-        f_statistic=None, f_p=None, xtx_inv=xtx_inv,
+        design=design,
+        params=res.params,
+        cov=res.cov_params(),
+        resid=res.resid,
+        fitted=res.fittedvalues,
+        weights=None,
+        sigma2=float(res.scale),
+        df_resid=float(res.df_resid),
+        rank=int(res.df_model + 1),
+        condition_number=1.0,
+        r_squared=float(res.rsquared),
+        r_squared_adj=float(res.rsquared_adj),
+        f_statistic=None,
+        f_p=None,
+        xtx_inv=xtx_inv,
     )
     influence = Influence(
-        hat=h, studentized_internal=r, studentized_external=t,
+        hat=h,
+        studentized_internal=r,
+        studentized_external=t,
         cooks=np.where(undefined, np.nan, infl.cooks_distance[0]),
-        dffits=t * np.sqrt(h / (1 - h)), dfbetas=dfbetas, undefined=undefined,
+        dffits=t * np.sqrt(h / (1 - h)),
+        dfbetas=dfbetas,
+        undefined=undefined,
     )
     return fit, influence
 
@@ -122,11 +145,17 @@ def synthetic_frame(n: int, seed: int = 7, groups: int = 12) -> pd.DataFrame:
     y = y + wave + noise + rng.normal(0, 0.6, groups)[block]
     y[3] += 9.0
     y[n // 2] -= 7.0
-    return pd.DataFrame({
-        "plot_id": [f"P{i:04d}" for i in range(1, n + 1)],
-        "yield_t": y, "water": water, "ph": ph, "site": site,
-        "block": [f"B{b:02d}" for b in block], "day": day,
-    })
+    return pd.DataFrame(
+        {
+            "plot_id": [f"P{i:04d}" for i in range(1, n + 1)],
+            "yield_t": y,
+            "water": water,
+            "ph": ph,
+            "site": site,
+            "block": [f"B{b:02d}" for b in block],
+            "day": day,
+        }
+    )
 
 
 def make_context(
@@ -144,11 +173,19 @@ def make_context(
     design = make_design(formula, frame)
     fit, influence = fit_and_measure(design)
     spec = BlockSpec(
-        id="growth", data="plots.csv", model=formula, id_column=id_column, order=order,
-        groups=groups, seed=seed,
+        id="growth",
+        data="plots.csv",
+        model=formula,
+        id_column=id_column,
+        order=order,
+        groups=groups,
+        seed=seed,
     )
-    ids = (frame[id_column].astype(str) if id_column else pd.Series(range(1, len(frame) + 1))
-           .astype(str)).to_numpy()
+    ids = (
+        frame[id_column].astype(str)
+        if id_column
+        else pd.Series(range(1, len(frame) + 1)).astype(str)
+    ).to_numpy()
     rows = np.arange(1, len(frame) + 1)
     return CheckContext(spec, fit, influence, frame.reset_index(drop=True), ids, rows, seed)
 
@@ -160,7 +197,7 @@ def make_findings(verdict: str = "concern") -> tuple[Finding, ...]:
         "normality": ("largest envelope excess", 0.31),
         "variance": ("spread ratio, top to bottom third", 1.83),
         "influence": ("largest coefficient shift (SE)", 0.74),
-        "independence": ("design effect", 1.6),
+        "independence": ("lag-1 autocorrelation", 0.2),
         "collinearity": ("largest VIF", 1.2),
     }
     return tuple(
@@ -213,9 +250,15 @@ def test_every_kind_draws_with_caption_and_alt(ctx: CheckContext, tmp_path: Path
     refs = draw_figures(ctx, make_findings(), tmp_path, "figures", FigureOptions())
     ids = [ref.id for ref in refs]
     assert ids == [
-        "fig-growth-linearity", "fig-growth-partial-water", "fig-growth-partial-ph",
-        "fig-growth-normality", "fig-growth-variance", "fig-growth-influence",
-        "fig-growth-dfbetas", "fig-growth-independence", "fig-growth-collinearity",
+        "fig-growth-linearity",
+        "fig-growth-partial-water",
+        "fig-growth-partial-ph",
+        "fig-growth-normality",
+        "fig-growth-variance",
+        "fig-growth-influence",
+        "fig-growth-dfbetas",
+        "fig-growth-independence",
+        "fig-growth-collinearity",
     ]
     kinds_used = {planned.kind.name for planned in plan_figures(ctx, make_findings())}
     assert kinds_used == {kind.name for kind in FIGURE_KINDS}
@@ -253,33 +296,42 @@ def test_bytes_are_identical_across_runs(ctx: CheckContext, tmp_path: Path, fmt:
 
 def test_bytes_are_identical_in_a_fresh_process(ctx: CheckContext, tmp_path: Path) -> None:
     # A second interpreter rules out state carried inside one process (id counters, caches).
-    code = _subprocess_code(tmp_path / "b", "svg")
+    formats = ("png", "svg", "pdf")
+    code = _subprocess_code(tmp_path / "b", formats)
     subprocess.run([sys.executable, "-c", code], check=True, cwd=Path(__file__).parent)
-    draw_figures(ctx, make_findings(), tmp_path / "a", "f", FigureOptions(format="svg"))
-    names = sorted(p.name for p in (tmp_path / "a").iterdir())
-    assert names == sorted(p.name for p in (tmp_path / "b").iterdir())
-    for name in names:
-        assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes()
+    for fmt in formats:
+        draw_figures(ctx, make_findings(), tmp_path / "a" / fmt, "f", FigureOptions(format=fmt))
+        names = sorted(p.name for p in (tmp_path / "a" / fmt).iterdir())
+        assert names == sorted(p.name for p in (tmp_path / "b" / fmt).iterdir())
+        for name in names:
+            first = (tmp_path / "a" / fmt / name).read_bytes()
+            assert first == (tmp_path / "b" / fmt / name).read_bytes(), name
 
 
-def _subprocess_code(out: Path, fmt: str, check_modules: bool = False) -> str:
-    return "\n".join([
+def _subprocess_code(out: Path, formats: tuple[str, ...], check_modules: bool = False) -> str:
+    """A script that draws the standard block's figures in each format under ``out/<fmt>``."""
+    lines = [
         "import sys; sys.path.insert(0, '.')",
         "from pathlib import Path",
         "import test_figures as t",
         "from premises.figures import draw_figures",
         "from premises.spec import FigureOptions",
-        f"draw_figures(t.make_context(), t.make_findings(), Path({str(out)!r}), 'f',"
-        f" FigureOptions(format={fmt!r}))",
-        "assert 'matplotlib' in sys.modules" if check_modules else "",
-        "assert 'matplotlib.pyplot' not in sys.modules, 'pyplot imported'" if check_modules else "",
-    ])
+        "ctx, findings = t.make_context(), t.make_findings()",
+        f"for fmt in {formats!r}:",
+        f"    draw_figures(ctx, findings, Path({str(out)!r}) / fmt, 'f', FigureOptions(format=fmt))",
+    ]
+    if check_modules:
+        lines += [
+            "assert 'matplotlib' in sys.modules",
+            "assert 'matplotlib.pyplot' not in sys.modules, 'pyplot was imported'",
+        ]
+    return "\n".join(lines)
 
 
 def test_pyplot_is_never_imported(tmp_path: Path) -> None:
-    code = _subprocess_code(tmp_path, "png", check_modules=True)
+    code = _subprocess_code(tmp_path, ("png",), check_modules=True)
     subprocess.run([sys.executable, "-c", code], check=True, cwd=Path(__file__).parent)
-    assert len(list(tmp_path.glob("*.png"))) == 9
+    assert len(list((tmp_path / "png").glob("*.png"))) == 9
 
 
 def test_importing_figures_does_not_import_matplotlib() -> None:
@@ -335,11 +387,43 @@ def test_labels_fall_back_to_row_numbers_without_id_column() -> None:
 
 
 def test_flags_come_from_the_influence_finding_when_listed(ctx: CheckContext) -> None:
-    point = FlaggedPoint(id="P0010", row=10, leverage=0.1, studentized=1.0, cooks=0.01,
-                         dffits=0.1, dfbetas=(), rules=("cooks > 4/n",))
-    influence = Finding("influence", "concern", None, extra=(("flagged", (point, "P0020")),))
+    point = FlaggedPoint(
+        id="P0010",
+        row=10,
+        leverage=0.1,
+        studentized=1.0,
+        cooks=0.01,
+        dffits=0.1,
+        dfbetas=(),
+        rules=("cooks > 4/n",),
+    )
+    listed = (point, "P0020", {"id": "P0030", "row": 30}, {"row": 40})
+    influence = Finding("influence", "concern", None, extra=(("flagged", listed),))
     flags = find_flags(ctx, influence)
-    assert set(flags.labels) == {"P0010", "P0020"} and flags.total == 2
+    assert set(flags.labels) == {"P0010", "P0020", "P0030", "P0040"} and flags.total == 4
+    # Severity order is Cook's distance, largest first.
+    cooks = ctx.influence.cooks[flags.index]
+    assert np.all(np.diff(cooks) <= 0)
+
+
+def test_lines_come_from_the_finding_thresholds(ctx: CheckContext) -> None:
+    from premises.figures import influence as influence_figure
+    from premises.results import ThresholdUse
+
+    uses = (
+        ThresholdUse("Cook's distance", "1", 1.0, "Cook & Weisberg 1982"),
+        ThresholdUse("leverage", "3p/n", 0.2, "Velleman & Welsch 1981"),
+        ThresholdUse("|DFBETAS|", "1", 1.0, "declared"),
+    )
+    finding = Finding("influence", "holds", None, thresholds=uses)
+    data = influence_figure.compute(ctx, finding)
+    assert data is not None and data.cooks_cut == 1.0 and data.leverage_cut == 0.2
+    # Without the finding's thresholds the block's expressions apply: 4/n and 2p/n.
+    plain = influence_figure.compute(ctx, Finding("influence", "holds", None))
+    assert plain is not None
+    assert plain.cooks_cut == pytest.approx(4 / 180) and plain.leverage_cut == pytest.approx(
+        2 * 6 / 180
+    )
 
 
 def test_large_n_switches_to_a_density_layer(tmp_path: Path) -> None:
@@ -480,6 +564,12 @@ def test_collinearity_reads_vifs_from_the_finding(ctx: CheckContext) -> None:
     data = collinearity.compute(ctx, finding)
     assert data is not None and data.terms == ("ph", "water")
     assert data.values.tolist() == [7.5, 2.0]
+    extra = (("vif", {"water": 1.5, "C(site)": 1.2}), ("df", {"water": 1, "C(site)": 3}))
+    data = collinearity.compute(ctx, Finding("collinearity", "holds", None, extra=extra))
+    assert data is not None and data.generalized == (False, True)
+    extra = (("gvif", {"water": 1.5, "C(site)": 8.0}), ("df", {"water": 1, "C(site)": 3}))
+    data = collinearity.compute(ctx, Finding("collinearity", "holds", None, extra=extra))
+    assert data is not None and data.values.tolist() == pytest.approx([2.0, 1.5])
 
 
 def test_nothing_to_show_gives_no_figure(tmp_path: Path) -> None:
@@ -508,6 +598,31 @@ def test_independence_by_group_caps_at_sixty_groups() -> None:
     assert data.mean[0] == pytest.approx(ref.min()) and data.mean[-1] == pytest.approx(ref.max())
 
 
+def test_independence_view_follows_the_measure(ctx: CheckContext) -> None:
+    by_order = independence.compute(ctx, make_findings()[4])
+    about_groups = Finding("independence", "concern", Statistic("design effect", 2.3))
+    by_group = independence.compute(ctx, about_groups)
+    assert isinstance(by_order, independence.OrderData)
+    assert isinstance(by_group, independence.GroupMeansData)
+
+
+def test_order_may_be_dates_or_text(tmp_path: Path) -> None:
+    frame = synthetic_frame(90)
+    frame["visit"] = pd.Timestamp("2024-01-01") + pd.to_timedelta(frame["day"], unit="D")
+    frame["wave"] = [f"w{d:03d}" for d in frame["day"]]
+    dated = make_context(frame=frame, order="visit", groups=None)
+    data = independence.compute(dated, make_findings()[4])
+    assert isinstance(data, independence.OrderData) and data.dates and not data.positional
+    assert data.cloud.x is not None and data.cloud.x.min() == pytest.approx(19723.0 + 1)  # days
+    texts = all_texts(drawn("independence", dated, make_findings())[0])
+    assert any(t.startswith("2024-") or "Jan" in t or "Feb" in t for t in texts)
+    worded = make_context(frame=frame, order="wave", groups=None)
+    data = independence.compute(worded, make_findings()[4])
+    assert isinstance(data, independence.OrderData) and data.positional
+    ref = draw_figures(worded, make_findings()[4:5], tmp_path, "", FigureOptions())[0]
+    assert "Residuals in wave order" in ref.caption
+
+
 def test_independence_order_column_missing_is_a_data_error() -> None:
     ctx = make_context(order="visit")
     with pytest.raises(DataError, match="order column 'visit'"):
@@ -533,6 +648,17 @@ def test_leverage_one_point_is_marked_undefined(tmp_path: Path) -> None:
     assert "c8" in influence_ref.caption and "leverage 1" in influence_ref.caption
     texts = all_texts(drawn("influence", ctx, make_findings())[0])
     assert "c8 (leverage 1)" in texts
+
+
+def test_numbers_in_captions_read_plainly() -> None:
+    from premises.figures.wording import format_number
+
+    assert format_number(0.042) == "0.0420"
+    assert format_number(1788.5134) == "1,789"
+    assert format_number(10.0) == "10"
+    assert format_number(-0.6149) == "-0.615"
+    assert format_number(2.0e-5) == "2.00 × 10⁻⁵"
+    assert format_number(float("nan")) == "undefined" and format_number(None) == "undefined"
 
 
 def test_threshold_expressions() -> None:
@@ -570,4 +696,3 @@ def test_size_follows_options(ctx: CheckContext, tmp_path: Path) -> None:
     draw_figures(ctx, make_findings()[:1], tmp_path, "f", FigureOptions(dpi=100, width=5.0))
     with Image.open(tmp_path / "fig-growth-linearity.png") as image:
         assert image.size == (500, 360)  # 5 in x 100 dpi, height 0.72 x width
-

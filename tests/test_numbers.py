@@ -182,6 +182,14 @@ def test_statistic_whose_name_ends_in_parentheses_gives_df_after() -> None:
     assert fmt_stat("LM (studentized)", 9.871, (3,)) == "LM (studentized) = 9.87, df = 3"
 
 
+def test_descriptive_statistic_names_give_df_after_symbols_before() -> None:
+    assert fmt_stat("RESET F", 3.41, (2, 383)) == "RESET F(2, 383) = 3.41"
+    assert (
+        fmt_stat("binned smooth over x", 1.81, (6, 165))
+        == "binned smooth over x = 1.81, df = 6, 165"
+    )
+
+
 def test_percent() -> None:
     assert fmt_pct(8.6540) == "8.7%"
     assert fmt_pct(-0.5204) == MINUS + "0.52%"

@@ -157,6 +157,7 @@ def test_full_section_has_every_part(block: dict[str, Any]) -> None:
     for ident in (
         "tbl-yield-ledger",
         "tbl-yield-assumptions",
+        "tbl-yield-thresholds",
         "tbl-yield-coefficients",
         "tbl-yield-flagged",
         "tbl-yield-sensitivity",
@@ -308,6 +309,91 @@ def test_change_log_renders_whatever_keys_it_has(block: dict[str, Any]) -> None:
     assert "- Flag: no" in text
 
 
+def test_thresholds_are_tabled_with_values_and_origins(block: dict[str, Any]) -> None:
+    text = _render(block)
+    assert "{#tbl-yield-thresholds}" in text
+    assert (
+        "| Influential observations | Cook's distance > 4/n | 0.0103 | common practice; usually credited to Bollen & Jackman, 1990 |"
+        in text
+    )
+    assert "| Collinearity | VIF > 10 | \u2014 | Marquardt, 1970 |" in text
+
+
+def test_threshold_expressions_keep_their_own_comparison(block: dict[str, Any]) -> None:
+    influence = next(f for f in block["checks"] if f["assumption"] == "influence")
+    influence["thresholds"] = [
+        {"name": "share at a bound", "expression": ">= 0.1", "value": 0.1, "origin": ""},
+        {"name": "alpha", "expression": "0.05", "value": 0.05, "origin": "declared"},
+        {
+            "name": "Bonferroni outlier test",
+            "expression": "n * p < 0.05",
+            "value": 0.05,
+            "origin": "",
+        },
+    ]
+    text = _render(block)
+    assert "| share at a bound \u2265 0.1 | \u2014 | \u2014 |" in text
+    assert "| \u03b1 = 0.05 | \u2014 | declared |" in text
+    assert "| Bonferroni outlier test: n \\* p \\< 0.05 | 0.0500 |" in text
+
+
+def test_no_thresholds_no_table(block: dict[str, Any]) -> None:
+    for finding in block["checks"]:
+        finding["thresholds"] = []
+    assert "tbl-yield-thresholds" not in _render(block)
+
+
+def test_a_method_given_as_a_clause_reads_as_its_own_sentence(block: dict[str, Any]) -> None:
+    block["checks"][1]["method"] = "linearity was assessed from binned means of the residuals"
+    text = _render(block)
+    assert "Linearity was assessed from binned means of the residuals." in text
+    assert "The influence of single observations was assessed by leverage" in text
+
+
+def test_evidence_lists_each_statistic_once(block: dict[str, Any]) -> None:
+    collinearity = block["checks"][6]
+    collinearity["statistics"].append(dict(collinearity["measure"]))
+    row = next(line for line in _render(block).splitlines() if line.startswith("| Collinearity |"))
+    assert row.count("largest variance inflation factor = 1.12") == 1
+
+
+def test_optional_clauses_keep_their_spaces(block: dict[str, Any]) -> None:
+    # trim_blocks eats the newline after a block tag: the templates must not glue words.
+    block["weights"] = "plot_weight"
+    block["fit"]["estimator"] = "WLS"
+    block["se_used"], block["se_robust_kind"], block["groups"], block["order"] = (
+        "cluster",
+        "cluster",
+        "village",
+        "survey_date",
+    )
+    block["se_reason"] = (
+        "groups are declared (village), so standard errors allow for correlation within groups"
+    )
+    text = _render(block)
+    assert "weighted least squares with weights from `plot_weight` to 389 of the 412 rows" in text
+    assert (
+        "with `village` as the cluster (Liang & Zeger, 1986), because groups are declared" in text
+    )
+    assert "grouped by `village`. Observations are ordered by `survey_date`." in text
+    assert "| Cluster-robust SE |" in text.replace(" SE | 95%", " SE |")
+
+
+def test_alternative_on_another_scale_keeps_its_own_precision(block: dict[str, Any]) -> None:
+    log_row = copy.deepcopy(block["sensitivity"][3])
+    log_row.update(label="log outcome", description="natural log of the outcome", changed=[])
+    for c in log_row["coefficients"]:
+        c.update(
+            estimate=c["estimate"] / 50,
+            ci_low=(c["ci_low"] or 0) / 50,
+            ci_high=(c["ci_high"] or 0) / 50,
+            se=c["se"] / 50,
+        )
+    block["sensitivity"].append(log_row)
+    row = next(line for line in _render(block).splitlines() if line.startswith("| Log outcome"))
+    assert "0.0175 [0.0147, 0.0203]" in row  # its own SE, 0.0014: two significant digits
+
+
 # --- log-scale interpretation ---------------------------------------------------------
 
 
@@ -387,9 +473,7 @@ def test_gfm_flavour_has_no_attributes_ids_or_divs(block: dict[str, Any]) -> Non
     assert "*Table 1. Data ledger" in text
     assert "> **Reading these diagnostics.**" in text
     # references agree with the numbering of the captions
-    assert (
-        "at least one threshold (Table 4)" in text and "*Table 4. Observations that crossed" in text
-    )
+    assert "their diagnostics (Table 5)" in text and "*Table 5. Observations that crossed" in text
 
 
 def test_error_callout_in_each_flavour() -> None:
@@ -611,6 +695,7 @@ def test_pandoc_reads_tables_with_ids_and_captions(
         else [
             "tbl-yield-ledger",
             "tbl-yield-assumptions",
+            "tbl-yield-thresholds",
             "tbl-yield-coefficients",
             "tbl-yield-flagged",
             "tbl-yield-sensitivity",
@@ -640,7 +725,7 @@ def test_pandoc_reads_the_gfm_flavour_as_plain_gfm(block: dict[str, Any]) -> Non
     doc = _ast(_render(block, "gfm"), reader="gfm")
     assert not [n for n in _walk(doc) if n.get("t") == "Figure" and n["c"][0][0]]
     tables = [n for n in _walk(doc) if n.get("t") == "Table"]
-    assert len(tables) == 6
+    assert len(tables) == 7
     quotes = [n for n in _walk(doc) if n.get("t") == "BlockQuote"]
     assert _text(quotes[-1]["c"][0]).startswith("Reading these diagnostics.")
 

@@ -181,6 +181,22 @@ def test_refreshed_data_is_stale_then_logged_then_current(project: Path, capsys:
     assert _cli("diff", doc) == EXIT_OK
     printed = capsys.readouterr().out
     assert "Rows added: P181; P182" in printed and "light_dli > 100" in printed
+    assert _cli("diff", doc, "--json") == EXIT_OK
+    assert json.loads(capsys.readouterr().out)["basil"] == log
+
+
+def test_notebook_blocks_have_a_status(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    shutil.copytree(EXAMPLE, tmp_path / "project", ignore=IGNORE)
+    notebook = tmp_path / "project" / "analysis.ipynb"
+    if not notebook.is_file():
+        pytest.skip("the example project has no notebook")
+    assert _cli("status", notebook) == EXIT_STALE
+    assert "never rendered" in capsys.readouterr().out
+    assert _cli("notebook", notebook) == EXIT_OK
+    capsys.readouterr()
+    assert _cli("status", notebook) == EXIT_OK
+    states = capsys.readouterr().out.splitlines()
+    assert states and all(line.endswith(": current") for line in states)
 
 
 def test_status_names_each_kind_of_staleness(project: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

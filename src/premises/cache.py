@@ -272,6 +272,23 @@ def section_sha256(section: str) -> str:
     return text_sha256("\n".join(found[k] for k in sorted(found)) if found else section.replace("\r\n", "\n"))
 
 
+STALE_TEMP_SECONDS = 3600
+"""A temporary entry folder older than this was left by a render that died; it is removed."""
+
+
+def _sweep(blocks: Path) -> None:
+    import shutil
+    import time
+
+    cutoff = time.time() - STALE_TEMP_SECONDS
+    for folder in blocks.iterdir():
+        try:
+            if folder.name.startswith((".tmp-", ".trash-")) and folder.stat().st_mtime < cutoff:
+                shutil.rmtree(folder, ignore_errors=True)
+        except OSError:
+            continue  # another render removed it first
+
+
 def _slug(text: str) -> str:
     return re.sub(r"[^A-Za-z0-9._-]+", "-", text).strip("-") or "document"
 
@@ -325,6 +342,7 @@ class BlockCache:
         import tempfile
 
         blocks.mkdir(parents=True, exist_ok=True)
+        _sweep(blocks)
         tmp = Path(tempfile.mkdtemp(prefix=f".tmp-{key[:12]}-", dir=blocks))
         try:
             payload = {"result.json": _json_bytes(result), "section.md": section.encode("utf-8")}

@@ -132,7 +132,7 @@ class Changes:
         Only what changed is listed, except the coefficient line, which says
         "none" when nothing moved beyond the tolerance (that is news too).
         """
-        out: list[tuple[str, Any]] = [("compared_with", f"the render with fingerprint {self.previous_fingerprint[:12]}")]
+        out: list[tuple[str, Any]] = [("previous_fingerprint", self.previous_fingerprint[:12])]
         if self.data_before != self.data_after:
             out.append(("data_file", {"before": self.data_before[:12], "after": self.data_after[:12]}))
         if self.spec_changed:

@@ -172,11 +172,16 @@ def _run_quarto_install(args: argparse.Namespace) -> int:
 def _run_quarto_prerender(args: argparse.Namespace) -> int:
     import os
 
-    from premises.quarto import prerender, project_inputs, quiet_from_env
+    from functools import partial
 
-    paths = project_inputs(os.environ, Path.cwd())
+    from premises.quarto import prerender, project_inputs, quiet_from_env, warm_document
+
+    paths = project_inputs(os.environ, Path("."))  # Quarto runs pre-render in the project folder
     echo = None if quiet_from_env() else print
-    report = prerender(paths, _options(args), echo=echo)
+    options = _options(args)
+    # With the result cache on, rendering every block now makes each filter call a cache hit.
+    warm = partial(warm_document, options=_options(args, flavor="quarto")) if options.use_cache else None
+    report = prerender(paths, options, echo=echo, warm=warm)
     for error in report.errors:
         print(f"premises: {error.message}", file=sys.stderr)
     if report.errors:

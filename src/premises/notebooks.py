@@ -14,6 +14,7 @@ figures stored as cell attachments.
 
 from __future__ import annotations
 
+import re
 import sys
 import tempfile
 from collections.abc import Callable, Sequence
@@ -96,8 +97,6 @@ def _synthesise(front: FrontMatter, raw: RawBlock, line: int | None = None) -> _
 
 
 def _backtick_runs(text: str) -> list[str]:
-    import re
-
     return re.findall(r"`+", text)
 
 

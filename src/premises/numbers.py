@@ -230,6 +230,14 @@ def fmt_pct(x: float | None) -> str:
     return fmt_num(x, sig=2) + "%"
 
 
+def _is_symbol(word: str) -> bool:
+    """A test-statistic symbol (F, W, LM, A2, χ², t, z; ``*F*`` in italics), not a variable name."""
+    word = word.strip("*")
+    if not word or len(word) > 3 or "_" in word:
+        return False
+    return word[0].isupper() or not word[0].isascii() or word in ("t", "z", "d", "r", "q")
+
+
 def fmt_stat(
     name: str, value: float | None, df: float | tuple[float, ...] | list[float] | None = None
 ) -> str:
@@ -248,7 +256,7 @@ def fmt_stat(
         dfs = (df,)
     df_text = ", ".join(fmt_df(d) for d in dfs)
     words = name.split()
-    if dfs and words and len(words[-1]) <= 3 and not name.endswith(")"):
+    if dfs and words and _is_symbol(words[-1]) and not name.endswith(")"):
         # A symbol takes its df in parentheses: "F(2, 95)", "RESET F(2, 383)".
         return f"{name}({df_text}) = {fmt_fixed(value, 2)}"
     if dfs:

@@ -33,6 +33,7 @@ __all__ = [
     "project_inputs",
     "quiet_from_env",
     "run_filter",
+    "warm_document",
 ]
 
 EXTENSION_NAME = "premises"
@@ -315,9 +316,9 @@ def prerender(
     echo
         Receives progress lines; None keeps quiet (``QUARTO_PROJECT_SCRIPT_QUIET``).
     warm
-        Called for each document once every document has passed. This is where a
-        result cache gets filled, so that the filter calls during the render
-        become cache hits; without a cache there is nothing to do.
+        Called for each document with blocks once every document has passed
+        (:func:`warm_document` fills the result cache, so that the filter calls
+        during the render become cache hits). Its errors are reported too.
 
     Returns
     -------
@@ -344,8 +345,29 @@ def prerender(
     if not errors and warm is not None:
         for path, count in checked:
             if count:
-                warm(path)
+                try:
+                    warm(path)
+                except PremisesError as exc:  # a model that cannot be fitted, a drifted rule
+                    errors.append(exc)
     return PrerenderReport(tuple(checked), tuple(errors))
+
+
+def warm_document(path: Path, options: RenderOptions) -> int:
+    """Render a document's blocks the way the filter will, so its calls become cache hits.
+
+    Only useful with the result cache on (``options.use_cache``); the sections
+    are thrown away, the figures stay where the filter would write them.
+
+    Returns
+    -------
+    int
+        The number of blocks rendered.
+    """
+    source = _read_source(path, str(path))
+    fragments = [Fragment(raw, label, line) for label, raw, line in source.blocks]
+    if fragments:
+        render_fragments(fragments, document=path.resolve(), output=path.resolve(), options=options, front=source.front)
+    return len(fragments)
 
 
 def quiet_from_env(env: Mapping[str, str] | None = None) -> bool:

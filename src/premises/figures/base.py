@@ -1,8 +1,9 @@
-"""What every figure shares: flagged points, binned smoothers, density layers, wording.
+"""What every figure shares: flagged points, thresholds, binned smoothers, density layers.
 
 Everything here is plain numpy and costs O(n) (or one sort), so a figure of a
 million rows costs about what one of ten thousand does. Drawing helpers live in
-:mod:`premises.figures.layers`; this module never imports matplotlib.
+:mod:`premises.figures.layers`, caption and alt-text wording in
+:mod:`premises.figures.wording`; this module never imports matplotlib.
 """
 
 from __future__ import annotations
@@ -11,7 +12,7 @@ import ast
 import math
 import operator
 import re
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -19,29 +20,21 @@ import numpy as np
 
 from premises.checks.base import CheckContext
 from premises.errors import SpecError
-from premises.results import FlaggedPoint, Finding
 from premises.figures.style import LARGE_N, MAX_FLAGGED_DRAWN, MAX_LABELS
+from premises.results import Finding, FlaggedPoint
 
 __all__ = [
     "BinnedMean",
-    "bonferroni_t",
     "Cloud",
     "FlagSet",
     "bin_means",
+    "bonferroni_t",
     "choose_bin_count",
-    "cloud_words",
-    "density_note",
     "evaluate_threshold",
     "find_flags",
-    "format_number",
-    "flag_sentence",
-    "join_caption",
     "make_cloud",
     "point_labels",
-    "points_word",
-    "slugify",
     "threshold_value",
-    "verdict_sentence",
 ]
 
 
@@ -141,8 +134,8 @@ def threshold_value(ctx: CheckContext, finding: Finding | None, name: str) -> fl
     the check used; otherwise the block's declared expression is evaluated here.
     """
     if finding is not None:
-        for use in finding.thresholds:
-            if use.name.lower().startswith(name):
+        for use in finding.thresholds:  # "Cook's distance", "|DFBETAS|", "VIF" ...
+            if re.sub(r"[^a-z]", "", use.name.lower()).startswith(name):
                 return float(use.value)
     declared = getattr(ctx.spec.thresholds, name)
     return evaluate_threshold(declared, ctx.fit.n, ctx.fit.p)
@@ -193,31 +186,40 @@ def find_flags(ctx: CheckContext, influence_finding: Finding | None) -> FlagSet:
 
 
 def _listed_flags(ctx: CheckContext, finding: Finding | None) -> np.ndarray | None:
-    """Positions of the points the influence finding lists, or None if it lists none."""
+    """Positions of the points the influence finding lists, or None if it lists none.
+
+    Matching is vectorised (``np.isin``), since at large n the list can hold
+    tens of thousands of entries.
+    """
     if finding is None:
         return None
     entries = dict(finding.extra).get("flagged")
     if entries is None:
         return None
-    by_row = {int(r): i for i, r in enumerate(np.asarray(ctx.rows).tolist())}
-    by_id = {str(v): i for i, v in enumerate(np.asarray(ctx.ids).tolist())}
-    found: list[int] = []
+    rows: list[int] = []
+    ids: list[str] = []
     for entry in entries:
-        position = _locate_entry(entry, by_row, by_id)
-        if position is not None:
-            found.append(position)
-    return np.unique(np.asarray(found, dtype=np.intp))
+        row, name = _row_or_id(entry)
+        if row is not None:
+            rows.append(row)
+        elif name is not None:
+            ids.append(name)
+    mask = np.isin(np.asarray(ctx.rows), np.asarray(rows, dtype=np.int64))
+    if ids:
+        mask |= np.isin(np.asarray(ctx.ids).astype(str), np.asarray(ids, dtype=str))
+    return np.flatnonzero(mask)
 
 
-def _locate_entry(entry: Any, by_row: dict[int, int], by_id: dict[str, int]) -> int | None:
-    """Design position of one listed flag (FlaggedPoint, mapping or bare id)."""
+def _row_or_id(entry: Any) -> tuple[int | None, str | None]:
+    """The data-file row (preferred) or the id of one listed flag."""
     if isinstance(entry, FlaggedPoint):
-        return by_row.get(entry.row, by_id.get(entry.id))
+        return entry.row, entry.id
     if isinstance(entry, Mapping):
-        if "row" in entry and int(entry["row"]) in by_row:
-            return by_row[int(entry["row"])]
-        return by_id.get(str(entry.get("id")))
-    return by_id.get(str(entry))
+        row = entry.get("row")
+        return (int(row) if row is not None else None), (
+            str(entry["id"]) if entry.get("id") is not None else None
+        )
+    return None, str(entry)
 
 
 def point_labels(ctx: CheckContext, index: np.ndarray) -> tuple[str, ...]:
@@ -262,6 +264,10 @@ class BinnedMean:
 
 QUANTILE_SAMPLE = 100_000
 """Bin edges are quantiles of at most about this many points (an even stride)."""
+
+
+MIN_BIN_COUNT = 3
+"""Bins with fewer points are left out of the smoother (our choice)."""
 
 
 def choose_bin_count(n: int) -> int:
@@ -309,7 +315,7 @@ def bin_means(x: np.ndarray, y: np.ndarray, bins: int | None = None) -> BinnedMe
             inner = (distinct[:-1] + distinct[1:]) / 2.0
     which = np.searchsorted(inner, x, side="right")
     count = np.bincount(which, minlength=inner.size + 1)
-    keep = count > 0
+    keep = count >= MIN_BIN_COUNT  # a bin of one or two points summarises nothing
     safe = np.maximum(count, 1)
     centre = np.bincount(which, weights=x, minlength=count.size) / safe
     mean = np.bincount(which, weights=y, minlength=count.size) / safe
@@ -381,90 +387,3 @@ def _padded_range(v: np.ndarray) -> tuple[float, float]:
     lo, hi = float(v.min()), float(v.max())
     pad = (hi - lo) * 0.02 or max(abs(lo) * 0.05, 0.5)
     return lo - pad, hi + pad
-
-
-# -------------------------------------------------------------------------- wording
-
-
-def format_number(value: float | None, digits: int = 3) -> str:
-    """About ``digits`` significant digits, no scientific notation for everyday sizes."""
-    if value is None or not math.isfinite(value):
-        return "undefined"
-    if value == 0:
-        return "0"
-    if float(value).is_integer() and abs(value) < 1e6:
-        return f"{int(value):,}"
-    magnitude = math.floor(math.log10(abs(value)))
-    if magnitude >= 6 or magnitude < -4:
-        mantissa = value / 10.0**magnitude
-        return f"{mantissa:.{digits - 1}f} × 10{_superscript(magnitude)}"
-    decimals = max(0, digits - 1 - magnitude)
-    return f"{value:,.{decimals}f}"
-
-
-def _superscript(k: int) -> str:
-    """An integer exponent in Unicode superscript digits."""
-    return str(k).translate(str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹"))
-
-
-def verdict_sentence(finding: Finding) -> str:
-    """The caption's closing sentence: the verdict and the measure it rests on."""
-    if finding.verdict == "not-assessed":
-        why = finding.reason or "the check could not be run"
-        return f"Not assessed: {why.rstrip('.')}."
-    text = f"Verdict: {finding.verdict}"
-    measure = finding.measure
-    if measure is not None and measure.value is not None:
-        text += f"; {measure.name} = {format_number(measure.value)}"
-    return text + "."
-
-
-def flag_sentence(flags: FlagSet) -> str:
-    """Alt-text clause naming the labelled flagged points (and how many are not drawn)."""
-    names = ", ".join(flags.labelled)
-    if flags.total == 0 or not names:
-        return "no flagged points"
-    if flags.total > flags.index.size:
-        return (
-            f"{flags.total:,} flagged points, of which the {flags.index.size} most influential "
-            f"are drawn and {len(flags.labelled)} labelled: {names}"
-        )
-    more = flags.total - len(flags.labelled)
-    tail = f" and {more} more unlabelled" if more > 0 else ""
-    return f"{points_word(flags.total, 'flagged point')} labelled {names}{tail}"
-
-
-def density_note(cloud: Cloud) -> str:
-    """Caption sentence for density mode (empty for a plain scatter)."""
-    if not cloud.dense:
-        return ""
-    return (
-        f"With {cloud.n:,} points the cloud is a 2-D histogram (darker cells hold more points, "
-        "log scale); flagged points are drawn one by one on top."
-    )
-
-
-def join_caption(*sentences: str) -> str:
-    """Sentences joined by single spaces, empty ones dropped."""
-    return " ".join(s.strip() for s in sentences if s and s.strip())
-
-
-def slugify(text: str) -> str:
-    """Lower-case ``[a-z0-9-]`` form of a term name, for figure ids and file names."""
-    slug = re.sub(r"[^a-z0-9]+", "-", text.lower()).strip("-")
-    return slug or "term"
-
-
-def cloud_words(cloud: Cloud, noun: str, against: str) -> str:
-    """Alt-text opening: 'Scatter of 180 residuals against fitted values' (or density wording)."""
-    if cloud.dense:
-        return (
-            f"Shaded 2-D histogram (log count scale) of {points_word(cloud.n, noun)} "
-            f"against {against}"
-        )
-    return f"Scatter of {points_word(cloud.n, noun)} against {against}"
-
-
-def points_word(n: int, noun: str = "point") -> str:
-    """``1 point`` / ``180 points`` with thousands separators."""
-    return f"{n:,} {noun}" + ("" if n == 1 else "s")

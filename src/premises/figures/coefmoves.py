@@ -16,16 +16,10 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from premises.checks.base import CheckContext
-from premises.figures.base import (
-    FlagSet,
-    format_number,
-    points_word,
-    point_labels,
-    threshold_value,
-    verdict_sentence,
-)
+from premises.figures.base import FlagSet, point_labels, threshold_value
 from premises.figures.layers import finish_axes, new_axes
 from premises.figures.style import BAND_ALPHA, COLOURS
+from premises.figures.wording import format_number, points_word, verdict_sentence
 from premises.results import Finding
 
 if TYPE_CHECKING:
@@ -63,7 +57,7 @@ class CoefficientShiftData:
     @property
     def beyond(self) -> np.ndarray:
         """(observations, terms) True where |DFBETAS| exceeds the cut-off."""
-        return np.abs(self.shifts) > self.cut
+        return np.asarray(np.abs(self.shifts) > self.cut, dtype=bool)
 
 
 def compute(
@@ -122,8 +116,14 @@ def draw(data: CoefficientShiftData, fig: Figure) -> None:
     ax.yaxis.grid(False)
     ax.xaxis.grid(True, color=COLOURS["grid"], linewidth=0.6)
     n_obs, n_terms = data.shifts.shape
-    ax.axvspan(-data.cut, data.cut, color=COLOURS["band"], alpha=BAND_ALPHA * 0.6, linewidth=0,
-               label=f"within ±{format_number(data.cut)} (cut-off)")
+    ax.axvspan(
+        -data.cut,
+        data.cut,
+        color=COLOURS["band"],
+        alpha=BAND_ALPHA * 0.6,
+        linewidth=0,
+        label=f"within ±{format_number(data.cut)} (cut-off)",
+    )
     ax.axvline(0.0, color=COLOURS["reference"], linewidth=0.9)
     # Observations are spread vertically inside each term's row, in the same order
     # in every row, so one observation sits at the same height throughout.
@@ -162,9 +162,15 @@ def _label_outermost(
             continue
         i = int(candidates[np.argmax(np.abs(x[candidates]))])
         ax.annotate(
-            labels[i], xy=(x[i], y[i]), xytext=(4 * side, 0), textcoords="offset points",
-            ha="left" if side > 0 else "right", va="center", fontsize=7,
-            color=COLOURS["flag_text"], zorder=5,
+            labels[i],
+            xy=(x[i], y[i]),
+            xytext=(4 * side, 0),
+            textcoords="offset points",
+            ha="left" if side > 0 else "right",
+            va="center",
+            fontsize=7,
+            color=COLOURS["flag_text"],
+            zorder=5,
         )
 
 

@@ -17,9 +17,10 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from premises.checks.base import CheckContext
-from premises.figures.base import format_number, threshold_value, verdict_sentence
+from premises.figures.base import threshold_value
 from premises.figures.layers import finish_axes, new_axes
 from premises.figures.style import COLOURS
+from premises.figures.wording import format_number, verdict_sentence
 from premises.formula import Design
 from premises.results import Finding
 
@@ -27,9 +28,6 @@ if TYPE_CHECKING:
     from matplotlib.figure import Figure
 
 __all__ = ["CollinearityData", "compute", "describe", "draw", "term_vifs"]
-
-EXTRA_KEYS = ("vif", "gvif", "vifs")
-"""Names under which the collinearity finding may carry per-term values."""
 
 
 @dataclass(frozen=True)
@@ -91,19 +89,26 @@ def _centred_cross_product(X: np.ndarray, centre: np.ndarray, chunk: int = 65_53
     p = X.shape[1]
     out = np.zeros((p, p))
     for start in range(0, X.shape[0], chunk):
-        block = X[start:start + chunk] - centre
+        block = X[start : start + chunk] - centre
         out += block.T @ block
     return out
 
 
 def _from_extra(finding: Finding) -> tuple[tuple[str, float, bool], ...] | None:
-    """Per-term values recorded by the check, if any (mapping or sequence of pairs)."""
+    """Per-term values recorded by the check, if any.
+
+    ``extra["vif"]`` holds VIF or GVIF^(1/df) per term and ``extra["df"]`` each
+    term's column count; a bare ``extra["gvif"]`` is converted with those df.
+    """
     extra = dict(finding.extra)
-    for key in EXTRA_KEYS:
-        if key in extra and extra[key] is not None:
-            pairs = _pairs(extra[key])
-            if pairs:
-                return tuple((term, float(value), key == "gvif") for term, value in pairs)
+    dfs = {term: int(df) for term, df in _pairs(extra.get("df") or {})}
+    for key in ("vif", "vifs"):
+        pairs = _pairs(extra.get(key) or {})
+        if pairs:
+            return tuple((t, v, dfs.get(t, 1) > 1) for t, v in pairs)
+    pairs = _pairs(extra.get("gvif") or {})
+    if pairs:
+        return tuple((t, v ** (1.0 / dfs.get(t, 1)), dfs.get(t, 1) > 1) for t, v in pairs)
     return None
 
 
@@ -160,7 +165,7 @@ def draw(data: CollinearityData, fig: Figure) -> None:
     ax.yaxis.grid(False)
     ax.xaxis.grid(True, color=COLOURS["grid"], linewidth=0.6)
     rows = np.arange(len(data.terms))[::-1]
-    over = data.values > data.threshold
+    over = data.values >= data.threshold
     ax.hlines(rows, 1.0, data.values, color=COLOURS["grid"], linewidth=1.2, zorder=2)
     ax.scatter(data.values[~over], rows[~over], s=30, c=COLOURS["smoother"], zorder=3)
     ax.scatter(data.values[over], rows[over], s=34, c=COLOURS["flag"], zorder=4)
@@ -207,7 +212,7 @@ def draw(data: CollinearityData, fig: Figure) -> None:
 
 def describe(data: CollinearityData, finding: Finding) -> tuple[str, str]:
     """Caption and alt text."""
-    over = [t for t, v in zip(data.terms, data.values) if v > data.threshold]
+    over = [t for t, v in zip(data.terms, data.values) if v >= data.threshold]
     caption = (
         "Variance inflation factor of each term (how much collinearity with the other terms "
         "inflates the variance of its coefficient; 1 = none), with the threshold "
@@ -224,7 +229,11 @@ def describe(data: CollinearityData, finding: Finding) -> tuple[str, str]:
     alt = (
         f"Dot chart of variance inflation factors for {len(data.terms)} terms "
         f"({'log scale' if data.log_scale else 'linear scale'}): {listing}; "
-        f"{len(over)} above the threshold {format_number(data.threshold)}"
-        + (f" ({', '.join(over)})." if over else ".")
+        + (
+            f"{len(over)} at or above the threshold {format_number(data.threshold)} "
+            f"({', '.join(over)})."
+            if over
+            else f"none reaches the threshold {format_number(data.threshold)}."
+        )
     )
     return caption, alt

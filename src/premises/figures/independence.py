@@ -18,29 +18,24 @@ import pandas as pd
 
 from premises.checks.base import CheckContext
 from premises.errors import DataError
-from premises.figures.base import (
-    BinnedMean,
-    Cloud,
-    FlagSet,
-    bin_means,
-    cloud_words,
-    density_note,
-    find_flags,
-    flag_sentence,
-    format_number,
-    join_caption,
-    make_cloud,
-    verdict_sentence,
-)
+from premises.figures.base import BinnedMean, Cloud, FlagSet, bin_means, find_flags, make_cloud
 from premises.figures.layers import (
-    finish_axes,
     draw_cloud,
     draw_flagged,
     draw_reference,
     draw_smoother,
+    finish_axes,
     new_axes,
 )
 from premises.figures.style import COLOURS
+from premises.figures.wording import (
+    cloud_words,
+    density_note,
+    flag_sentence,
+    format_number,
+    join_caption,
+    verdict_sentence,
+)
 from premises.results import Finding
 
 if TYPE_CHECKING:
@@ -50,6 +45,9 @@ __all__ = ["GroupMeansData", "OrderData", "compute", "describe", "draw", "lag1_a
 
 MAX_GROUPS = 60
 """Groups drawn at most: the 30 lowest and 30 highest means."""
+
+GROUP_MEASURES = ("design effect", "intraclass", "icc", "cluster")
+"""Words in a measure's name that say it is about groups rather than order."""
 
 TICK_GROUPS = 25
 """Up to this many groups, every group is named on the axis."""
@@ -92,7 +90,7 @@ class GroupMeansData:
     @property
     def beyond(self) -> np.ndarray:
         """Shown groups whose +-2 SE bar excludes zero."""
-        return np.abs(self.mean) > 2.0 * self.se
+        return np.asarray(np.abs(self.mean) > 2.0 * self.se, dtype=bool)
 
 
 def lag1_autocorrelation(resid: np.ndarray) -> float:
@@ -109,7 +107,10 @@ def lag1_autocorrelation(resid: np.ndarray) -> float:
 def compute(
     ctx: CheckContext, finding: Finding, flags: FlagSet | None = None
 ) -> OrderData | GroupMeansData | None:
-    """Residuals by order (if declared), else by group (if declared), else None.
+    """Residuals by order or by group, whichever the block declares, else None.
+
+    With both declared, the view follows the finding's measure: a design effect
+    or intraclass correlation is about groups, anything else about order.
 
     Parameters
     ----------
@@ -120,10 +121,15 @@ def compute(
     flags
         Points to mark in the order figure; default :func:`find_flags`.
     """
-    if ctx.spec.order:
-        return _by_order(ctx, ctx.spec.order, flags if flags is not None else find_flags(ctx, None))
-    if ctx.spec.groups:
-        return _by_group(ctx, ctx.spec.groups)
+    order, groups = ctx.spec.order, ctx.spec.groups
+    if order and groups:
+        measure = (finding.measure.name if finding.measure else "").lower()
+        if any(word in measure for word in GROUP_MEASURES):
+            order = None
+    if order:
+        return _by_order(ctx, order, flags if flags is not None else find_flags(ctx, None))
+    if groups:
+        return _by_group(ctx, groups)
     return None
 
 
@@ -320,8 +326,5 @@ def describe(data: OrderData | GroupMeansData, finding: Finding) -> tuple[str, s
         verdict_sentence(finding),
     )
     shape = cloud_words(data.cloud, "residual", f"{data.order}")
-    alt = (
-        f"{shape}; the lag-1 autocorrelation is {data.lag1:.2f}; "
-        f"{flag_sentence(data.flags)}."
-    )
+    alt = f"{shape}; the lag-1 autocorrelation is {data.lag1:.2f}; {flag_sentence(data.flags)}."
     return caption, alt

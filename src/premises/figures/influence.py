@@ -20,20 +20,22 @@ from premises.figures.base import (
     Cloud,
     FlagSet,
     bonferroni_t,
-    cloud_words,
-    density_note,
     find_flags,
-    flag_sentence,
-    format_number,
-    join_caption,
     make_cloud,
     point_labels,
-    points_word,
     threshold_value,
-    verdict_sentence,
 )
 from premises.figures.layers import draw_cloud, draw_flagged, finish_axes, new_axes, place_labels
 from premises.figures.style import COLOURS, RASTER_ABOVE
+from premises.figures.wording import (
+    cloud_words,
+    density_note,
+    flag_sentence,
+    format_number,
+    join_caption,
+    points_word,
+    verdict_sentence,
+)
 from premises.results import Finding
 
 if TYPE_CHECKING:
@@ -119,7 +121,7 @@ def compute(
 def _area(cooks: np.ndarray, cooks_max: float) -> np.ndarray:
     """Marker area proportional to Cook's distance (plus a floor so every point shows)."""
     scale = (AREA_MAX - AREA_MIN) / cooks_max if cooks_max > 0 else 0.0
-    return AREA_MIN + scale * np.nan_to_num(cooks, nan=0.0)
+    return np.asarray(AREA_MIN + scale * np.nan_to_num(cooks, nan=0.0), dtype=float)
 
 
 def draw(data: InfluenceData, fig: Figure) -> None:

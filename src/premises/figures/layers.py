@@ -92,7 +92,8 @@ def render_to_file(
             f"The figure format must be one of {', '.join(FIGURE_FORMATS)}; got '{fmt}'.",
             hint="Set figures: {format: png} (or svg, pdf) in the block.",
         )
-    with matplotlib.rc_context(RC_PARAMS):
+    rc: Any = RC_PARAMS  # matplotlib types the keys as literals; ours are checked by use
+    with matplotlib.rc_context(rc):
         fig = new_figure(options)
         draw(data, fig)
         _write_atomically(fig, path, fmt, options.dpi)
@@ -222,8 +223,9 @@ def draw_flagged(
         zorder=6,
     )
     # A fixed-size stand-in, so the legend key does not take the largest point's size.
-    ax.scatter([], [], s=18.0, facecolors="none", edgecolors=COLOURS["flag"], linewidths=1.1,
-               label=label)
+    ax.scatter(
+        [], [], s=18.0, facecolors="none", edgecolors=COLOURS["flag"], linewidths=1.1, label=label
+    )
     place_labels(ax, x[:MAX_LABELS], y[:MAX_LABELS], labels[:MAX_LABELS], avoid=(x, y))
 
 
@@ -265,7 +267,7 @@ def place_labels(
     if len(labels) == 0:
         return
     ax.autoscale_view()
-    fig = ax.get_figure()
+    fig = ax.get_figure(root=True)
     assert fig is not None
     scale = fig.dpi / 72.0
     size = 7.5
@@ -304,8 +306,13 @@ def place_labels(
             zorder=7,
             annotation_clip=False,
             arrowprops=(
-                {"arrowstyle": "-", "color": COLOURS["flag_text"], "linewidth": 0.5,
-                 "shrinkA": 0, "shrinkB": 3}
+                {
+                    "arrowstyle": "-",
+                    "color": COLOURS["flag_text"],
+                    "linewidth": 0.5,
+                    "shrinkA": 0,
+                    "shrinkB": 3,
+                }
                 if far
                 else None
             ),
@@ -344,7 +351,8 @@ def finish_axes(ax: Axes, title: str, smoother: tuple[Any, Any] | None = None) -
     Above the axes the legend can never cover a point or a label. A smoother's
     line and band share one legend entry.
     """
-    handles, names = ax.get_legend_handles_labels()
+    artists, names = ax.get_legend_handles_labels()
+    handles: list[Any] = list(artists)
     if smoother is not None:
         band, line = smoother
         handles = [(band, line) if h is line else h for h in handles]
@@ -369,13 +377,13 @@ def finish_axes(ax: Axes, title: str, smoother: tuple[Any, Any] | None = None) -
 
 def _legend_columns(names: Sequence[str], ax: Axes) -> int:
     """Most columns whose widest row still fits the axes width (text width estimated)."""
-    fig = ax.get_figure()
+    fig = ax.get_figure(root=True)
     assert fig is not None
     available = fig.get_figwidth() * 72.0 * 0.85  # points
     widths = [len(name) * 7.5 * 0.55 + 7.5 * 3.6 for name in names]
     for ncols in range(len(names), 0, -1):
         rows = -(-len(names) // ncols)
-        columns = [widths[c * rows:(c + 1) * rows] for c in range(ncols)]
+        columns = [widths[c * rows : (c + 1) * rows] for c in range(ncols)]
         if sum(max(col) for col in columns if col) <= available:
             return ncols
     return 1

@@ -13,28 +13,22 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from premises.checks.base import CheckContext
-from premises.figures.base import (
-    BinnedMean,
-    Cloud,
-    FlagSet,
-    bin_means,
-    cloud_words,
-    density_note,
-    find_flags,
-    flag_sentence,
-    format_number,
-    join_caption,
-    make_cloud,
-    points_word,
-    verdict_sentence,
-)
+from premises.figures.base import BinnedMean, Cloud, FlagSet, bin_means, find_flags, make_cloud
 from premises.figures.layers import (
-    finish_axes,
     draw_cloud,
     draw_flagged,
     draw_reference,
     draw_smoother,
+    finish_axes,
     new_axes,
+)
+from premises.figures.wording import (
+    cloud_words,
+    density_note,
+    flag_sentence,
+    format_number,
+    join_caption,
+    verdict_sentence,
 )
 from premises.results import Finding
 

@@ -18,16 +18,10 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from premises.checks.base import CheckContext
-from premises.figures.base import (
-    FlagSet,
-    find_flags,
-    flag_sentence,
-    format_number,
-    points_word,
-    verdict_sentence,
-)
+from premises.figures.base import FlagSet, find_flags
 from premises.figures.layers import draw_flagged, finish_axes, new_axes
 from premises.figures.style import BAND_ALPHA, COLOURS, MAX_QUANTILES, point_alpha, point_size
+from premises.figures.wording import flag_sentence, format_number, points_word, verdict_sentence
 from premises.results import Finding
 
 if TYPE_CHECKING:
@@ -155,8 +149,14 @@ def draw(data: NormalityData, fig: Figure) -> None:
     )
     # The identity line spans the normal quantiles only, so it does not stretch the x axis.
     reach = float(np.max(np.abs(data.theoretical))) * 1.05
-    ax.plot([-reach, reach], [-reach, reach], color=COLOURS["reference"], linewidth=0.9,
-            zorder=2, label="identity (exactly normal)")
+    ax.plot(
+        [-reach, reach],
+        [-reach, reach],
+        color=COLOURS["reference"],
+        linewidth=0.9,
+        zorder=2,
+        label="identity (exactly normal)",
+    )
     ax.scatter(
         data.theoretical,
         data.sample,

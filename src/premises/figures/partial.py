@@ -14,23 +14,18 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from premises.checks.base import CheckContext
-from premises.figures.base import (
-    BinnedMean,
-    Cloud,
-    FlagSet,
-    bin_means,
+from premises.figures.base import BinnedMean, Cloud, FlagSet, bin_means, find_flags, make_cloud
+from premises.figures.layers import draw_cloud, draw_flagged, draw_smoother, finish_axes, new_axes
+from premises.figures.style import COLOURS
+from premises.figures.wording import (
     cloud_words,
     density_note,
-    find_flags,
     flag_sentence,
     format_number,
     join_caption,
-    make_cloud,
     slugify,
     verdict_sentence,
 )
-from premises.figures.layers import draw_cloud, draw_flagged, draw_smoother, finish_axes, new_axes
-from premises.figures.style import COLOURS
 from premises.formula import Design
 from premises.results import Finding
 
