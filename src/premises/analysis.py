@@ -98,7 +98,7 @@ def prepare_block(spec: BlockSpec, document_dir: Path, options: AnalysisOptions)
         max_bytes=options.max_data_bytes,
     )
     try:
-        columns = check_formula(spec.model, tuple(table.frame.columns) + tuple(t.target for t in spec.transforms))
+        columns = check_formula(spec.model, tuple(dict.fromkeys((*table.frame.columns, *(t.target for t in spec.transforms)))))
     except PremisesError as exc:
         raise type(exc)(exc.problem, spec.locate("model"), hint=exc.hint) from exc
     check_columns(spec, table.frame, columns)
