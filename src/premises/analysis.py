@@ -39,6 +39,13 @@ if TYPE_CHECKING:
 __all__ = ["AnalysisOptions", "analyse_block", "prepare_block", "library_versions"]
 
 
+ANALYSED_IDS_MAX = 100_000
+"""Above this many analysed rows the result leaves ``analysed_ids`` empty: 10^6 ids cost
+seconds and tens of MB in every result JSON and cache record. The change log then says
+how many rows were read and analysed, not which ones entered or left (the ledger's
+``removed_ids`` are kept whatever the size)."""
+
+
 @dataclass(frozen=True)
 class AnalysisOptions:
     """Choices that come from the command line rather than the block."""
@@ -357,7 +364,7 @@ def analyse_block(
         order=spec.order,
         weights=spec.weights,
         detail=spec.detail,
-        analysed_ids=outcome.ids,
+        analysed_ids=outcome.ids if len(outcome.ids) <= ANALYSED_IDS_MAX else (),
     )
 
 

@@ -463,6 +463,8 @@ def _rebuild(tp: Any, value: Any, name: str, hints: dict[type, dict[str, Any]]) 
     if origin is tuple:
         args = get_args(tp)
         if len(args) == 2 and args[1] is Ellipsis:
+            if args[0] is str:
+                return tuple(value)  # ids: up to 10^6 strings, nothing to rebuild
             return tuple(_rebuild(args[0], v, "", hints) for v in value)
         return tuple(_rebuild(a, v, "", hints) for a, v in zip(args, value))
     if tp is float:

@@ -206,10 +206,13 @@ def _all_ids(result: Mapping[str, Any]) -> set[str] | None:
 
 def _ordered(ids: set[str], *orders: Sequence[str]) -> tuple[str, ...]:
     """``ids`` in the order they appear in ``orders`` (file order), then sorted for the rest."""
-    seen: list[str] = []
+    # dict keys: ordered, with O(1) membership (a list made this quadratic in the ids changed)
+    seen: dict[str, None] = {}
     for order in orders:
-        seen.extend(i for i in order if i in ids and i not in seen)
-    return tuple(seen) + tuple(sorted(ids - set(seen)))
+        for i in order:
+            if i in ids and i not in seen:
+                seen[i] = None
+    return tuple(seen) + tuple(sorted(ids - seen.keys()))
 
 
 def _file_order(result: Mapping[str, Any]) -> list[str]:

@@ -123,6 +123,12 @@ def resolve_data_path(
     data: str, document_dir: Path, where: Location, *, allow_outside: bool = False
 ) -> Path:
     """Resolve ``data`` against the document's folder and check it stays in the project."""
+    if "\0" in data:
+        raise DataError(
+            f"the data path {data!r} contains a NUL character.",
+            where,
+            hint="Write the file name without control characters.",
+        )
     raw = Path(data)
     if raw.is_absolute() and not allow_outside:
         raise DataError(
@@ -131,7 +137,7 @@ def resolve_data_path(
             hint="Write it relative to the document, or pass --allow-outside-data.",
         )
     candidate = (document_dir / raw) if not raw.is_absolute() else raw
-    resolved = candidate.resolve()
+    resolved = _resolve(candidate, data, where)
     root = find_project_root(document_dir)
     if not allow_outside and not resolved.is_relative_to(root):
         raise DataError(
@@ -139,16 +145,40 @@ def resolve_data_path(
             where,
             hint="Move the data into the project, or pass --allow-outside-data if you trust the document.",
         )
-    if not resolved.exists():
+    try:
+        exists, is_file = resolved.exists(), resolved.is_file()
+    except OSError as exc:
+        raise _path_problem(data, where, exc) from exc
+    if not exists:
         nearby = sorted(p.name for p in resolved.parent.glob("*"))[:8] if resolved.parent.is_dir() else []
         hint = "Check the path; it is relative to the document's folder."
         if nearby:
             hint += " Files there: " + ", ".join(nearby) + "."
         raise DataError(f"the data file '{data}' does not exist.", where, hint=hint)
-    if not resolved.is_file():
+    if not is_file:
         raise DataError(f"the data path '{data}' is not a file.", where, hint="Name a data file.")
     return resolved
 
+
+def _resolve(candidate: Path, data: str, where: Location) -> Path:
+    """``candidate.resolve()``, with a link loop or an impossible name as a DataError."""
+    try:
+        return candidate.resolve()
+    except (OSError, RuntimeError) as exc:  # RuntimeError: a symlink loop before Python 3.13
+        raise _path_problem(data, where, exc) from exc
+
+
+def _path_problem(data: str, where: Location, exc: BaseException) -> DataError:
+    import errno
+
+    code = getattr(exc, "errno", None)
+    if isinstance(exc, RuntimeError) or code == errno.ELOOP:
+        reason = "its symbolic links lead back to themselves (a loop)"
+    elif code == errno.ENAMETOOLONG:
+        reason = "the name is too long for this system"
+    else:
+        reason = getattr(exc, "strerror", None) or str(exc)
+    return DataError(f"the data path '{data}' cannot be used: {reason}.", where, hint="Check the path and any links along it.")
 
 def _sha256(path: Path) -> str:
     digest = hashlib.sha256()
@@ -158,11 +188,83 @@ def _sha256(path: Path) -> str:
     return digest.hexdigest()
 
 
-def _looks_binary(path: Path, fmt: str) -> bool:
+def _read_head(path: Path, data: str, where: Location) -> bytes:
+    """The file's first bytes; an unreadable file is a DataError."""
+    try:
+        with path.open("rb") as handle:
+            return handle.read(8192)
+    except OSError as exc:
+        raise DataError(
+            f"the data file '{data}' cannot be read: {exc.strerror or exc}.",
+            where,
+            hint="Check its permissions.",
+        ) from exc
+
+
+def _check_text_head(head: bytes, data: str, fmt: str, where: Location) -> None:
+    """Refuse UTF-16 and binary bytes in a delimited text file, with what to do."""
     if fmt not in ("csv", "tsv"):
-        return False
-    with path.open("rb") as handle:
-        return b"\0" in handle.read(8192)
+        return
+    pairs = head[: len(head) - len(head) % 2]
+    utf16 = head.startswith((b"\xff\xfe", b"\xfe\xff")) or (
+        # ASCII text as UTF-16 without a byte-order mark: every other byte is NUL.
+        len(pairs) >= 4 and any(pairs[0::2]) != any(pairs[1::2])
+    )
+    if utf16:
+        raise DataError(
+            f"the data file '{data}' is UTF-16 text.",
+            where,
+            hint="Save it as UTF-8 (most spreadsheet programs offer 'CSV UTF-8').",
+        )
+    if b"\0" in head:
+        raise DataError(
+            f"the data file '{data}' holds binary bytes, not {fmt} text.",
+            where,
+            hint="Check that the file really is text, or give it the extension of its format.",
+        )
+
+
+def _header_names(path: Path, sep: str) -> list[str]:
+    """The header row as written (pandas renames a repeated name to 'x.1')."""
+    import csv
+
+    with path.open(encoding="utf-8-sig", newline="") as handle:
+        for row in csv.reader(handle, delimiter=sep):
+            if any(cell.strip() for cell in row):
+                return [cell.strip() for cell in row]
+    return []
+
+
+_SEPARATORS = {";": "semicolons", "\t": "tabs", ",": "commas", "|": "bars"}
+
+
+def _check_columns(frame: pd.DataFrame, path: Path, data: str, fmt: str, where: Location) -> None:
+    """Refuse a header that repeats a name, or a file read with the wrong separator."""
+    names = _header_names(path, "\t" if fmt == "tsv" else ",") if fmt in ("csv", "tsv") else []
+    names = names or [str(c).strip() for c in frame.columns]
+    seen: set[str] = set()
+    for name in names:
+        if name in seen:
+            raise DataError(
+                f"the header of '{data}' names the column '{name}' twice.",
+                where,
+                hint="Rename one of them; the block finds columns by name.",
+            )
+        seen.add(name)
+    if fmt in ("csv", "tsv") and len(frame.columns) == 1:
+        sep = "\t" if fmt == "tsv" else ","
+        name = str(frame.columns[0])
+        found = next((s for s in _SEPARATORS if s != sep and s in name), None)
+        if found is not None:
+            fix = {"\t": "Give it the extension .tsv.", ",": "Give it the extension .csv."}.get(
+                found, "Save it with commas (what spreadsheet programs call CSV), or with tabs as .tsv."
+            )
+            raise DataError(
+                f"the data file '{data}' has a single column named {name!r}: its fields seem to be "
+                f"separated by {found!r} ({_SEPARATORS[found]}), not {_SEPARATORS[sep]}.",
+                where,
+                hint=fix,
+            )
 
 
 def load_table(
@@ -208,17 +310,12 @@ def load_table(
         )
     if size == 0:
         raise DataError(f"the data file '{data}' is empty.", where, hint="Point 'data' at a file with rows.")
-    if _looks_binary(path, fmt):
-        raise DataError(
-            f"the data file '{data}' holds binary bytes, not {fmt} text.",
-            where,
-            hint="Check that the file really is text, or give it the extension of its format.",
-        )
+    _check_text_head(_read_head(path, data, where), data, fmt, where)
     try:
         frame = reader(path)
     except DataError as exc:
         raise DataError(f"cannot read '{data}': {exc.problem}", where, hint=exc.hint) from exc
-    except (ValueError, OSError, ImportError) as exc:
+    except Exception as exc:  # noqa: BLE001 - readers of binary formats raise many kinds (BadZipFile, ArrowInvalid, ...)
         raise DataError(
             f"cannot read '{data}' as {fmt}: {str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__}.",
             where,
@@ -228,6 +325,7 @@ def load_table(
         raise DataError(
             f"the data file '{data}' has a header but no rows.", where, hint="Add data rows."
         )
+    _check_columns(frame, path, data, fmt, where)
     frame.columns = [str(c).strip() for c in frame.columns]
     info = DataInfo(
         path=data.replace(os.sep, "/"),

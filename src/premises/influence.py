@@ -121,8 +121,10 @@ def compute_influence(fit: FitResult) -> Influence:
         t = e / (s_without * np.sqrt(one_minus_h))
         dffits = t * np.sqrt(h / one_minus_h)
         # b - b_(i) = (X'WX)^-1 x_i e_i / (1 - h_i) (BKW 1980, eq. 2.1), row-wise.
-        shift = factor.coef_rows() * (e / one_minus_h)[:, None]
-        dfbetas = shift / (s_without[:, None] * np.sqrt(np.diag(fit.xtx_inv))[None, :])
+        # In place on the (n, p) rows: no further (n, p) temporaries at 10^6 rows.
+        dfbetas = factor.coef_rows()
+        dfbetas *= (e / one_minus_h / s_without)[:, None]
+        dfbetas /= np.sqrt(np.diag(fit.xtx_inv))[None, :]
     return Influence(
         hat=h,
         studentized_internal=r,

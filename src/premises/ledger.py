@@ -16,6 +16,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from difflib import get_close_matches
+from itertools import compress
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -147,11 +148,11 @@ def _apply_exclusions(
                 spec.locate(rule.key + ".expect"),
                 hint="Look at the rows it now matches; update 'expect' only if the change is intended.",
             )
-        removed = tuple(i for i, m in zip(ids, mask) if m)
+        removed = tuple(compress(ids, mask))
         matched_all.append((rule.key, removed))
         before = len(frame)
         frame = frame.loc[~mask]
-        ids = [i for i, m in zip(ids, mask) if not m]
+        ids = list(compress(ids, ~mask))
         steps.append(
             LedgerStep(
                 kind="exclude",
@@ -229,7 +230,7 @@ def _drop_missing(
             spec.locate("missing"),
             hint="Fill or exclude those rows, or set missing: drop to drop and count them.",
         )
-    removed = tuple(i for i, m in zip(ids, row_missing) if m)
+    removed = tuple(compress(ids, row_missing)) if n_missing else ()
     step = LedgerStep(
         kind="missing",
         rule="missing in " + ", ".join(present),
@@ -241,8 +242,9 @@ def _drop_missing(
         source="data",
         missing_by_column=counts,
     )
-    frame = frame.loc[~row_missing]
-    ids = [i for i, m in zip(ids, row_missing) if not m]
+    if n_missing:  # else no copy of the frame and no pass over the ids (10^6 rows)
+        frame = frame.loc[~row_missing]
+        ids = list(compress(ids, ~row_missing))
     return frame, ids, [step]
 
 
@@ -295,7 +297,8 @@ def _apply_transforms(
     formula_transforms: tuple[FormulaTransform, ...],
 ) -> tuple[pd.DataFrame, list[LedgerStep]]:
     steps: list[LedgerStep] = []
-    frame = frame.copy()
+    if any(not _formula_matches(t, formula_transforms) for t in spec.transforms):
+        frame = frame.copy()  # only when a column is written (a whole copy at 10^6 rows otherwise)
     annotations: dict[tuple[str, str], TransformSpec] = {}
     for t in spec.transforms:
         if _formula_matches(t, formula_transforms):
@@ -371,7 +374,7 @@ def apply_ledger(
     if drop_ids:
         keep = np.fromiter((i not in drop_ids for i in ids), dtype=bool, count=len(ids))
         frame = frame.loc[keep]
-        ids = [i for i, k in zip(ids, keep) if k]
+        ids = list(compress(ids, keep))
     if len(frame) == 0:
         raise DataError(
             "no rows are left to analyse after the exclusions and missing values.",

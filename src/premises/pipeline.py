@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Mapping, Sequence
@@ -20,6 +21,7 @@ from premises.results import DocumentResult, to_jsonable
 from premises.spec import BlockSpec
 
 __all__ = [
+    "MAX_BLOCKS",
     "RenderOptions",
     "RenderedDocument",
     "check_file",
@@ -29,6 +31,9 @@ __all__ = [
     "render_text",
     "write_html",
 ]
+
+MAX_BLOCKS = 200
+"""Most premises blocks one document may hold."""
 
 FILTER_KEYS = ("python", "on-error", "flavor", "cache", "jobs")
 """Front-matter ``premises:`` keys meant for the filter, not for the blocks."""
@@ -82,15 +87,21 @@ def parse_document(text: str, file: str | None, *, document_dir: Path | None = N
     from premises.documents.markdown import find_blocks, read_front_matter
     from premises.spec import parse_block
 
-    front, _ = read_front_matter(text)
-    front_defaults = dict(front.get("premises") or {}) if isinstance(front, Mapping) else {}
-    if not isinstance(front.get("premises", {}) if isinstance(front, Mapping) else {}, Mapping):
-        raise SpecError("the front matter key 'premises' must be a mapping of block defaults.", Location(file, 1, None, "premises"), hint="Write e.g. premises: {se: hc3}.")
+    front, front_lines = read_front_matter(text, file)
+    if not isinstance(front.get("premises") or {}, Mapping):
+        raise SpecError("the front matter key 'premises' must be a mapping of block defaults.", Location(file, _front_key_line(text, "premises", front_lines), None, "premises"), hint="Write e.g. premises: {se: hc3}.")
+    front_defaults = dict(front.get("premises") or {})
     for key in FILTER_KEYS:
         front_defaults.pop(key, None)
     project = read_project_settings(document_dir) if document_dir is not None else {}
     defaults = merge_settings(project, front_defaults, cli_settings or {})
     raws = list(find_blocks(text, file))
+    if len(raws) > MAX_BLOCKS:
+        raise SpecError(
+            f"The document has {len(raws)} premises blocks, more than the {MAX_BLOCKS} allowed.",
+            Location(file, raws[MAX_BLOCKS].line),
+            hint="Split the document into several documents.",
+        )
     specs: list[BlockSpec] = []
     seen: dict[str, int] = {}
     for raw in raws:
@@ -106,11 +117,29 @@ def parse_document(text: str, file: str | None, *, document_dir: Path | None = N
     return raws, specs
 
 
+def _front_key_line(text: str, key: str, length: int) -> int:
+    """Document line of a top-level front-matter key (the first line when not found)."""
+    for number, line in enumerate(text.splitlines()[1 : max(length - 1, 1)], start=2):
+        if re.match(rf"{re.escape(key)}\s*:", line):
+            return number
+    return 1
+
+
 def _template_dirs(spec: BlockSpec, document_dir: Path, options: RenderOptions) -> tuple[Path, ...]:
     dirs = list(options.template_dirs)
     if spec.templates:
-        folder = (document_dir / spec.templates).resolve()
-        if not folder.is_dir():
+        from premises.data import find_project_root
+
+        try:
+            folder = (document_dir / spec.templates).resolve()
+            is_dir = folder.is_dir()
+        except (OSError, RuntimeError, ValueError) as exc:  # a link loop, a NUL, a name too long
+            raise SpecError(f"the templates folder '{spec.templates}' cannot be used: {exc}.", spec.locate("templates"), hint="Check the path and any links along it.") from exc
+        root = find_project_root(document_dir)
+        # Templates come from the document like data does: they stay in the project unless allowed.
+        if not options.allow_outside_data and not folder.is_relative_to(root):
+            raise SpecError(f"the templates folder '{spec.templates}' leads outside the project folder {root}.", spec.locate("templates"), hint="Move the templates into the project, or pass --allow-outside-data if you trust the document.")
+        if not is_dir:
             raise SpecError(f"the templates folder '{spec.templates}' does not exist.", spec.locate("templates"), hint="Create it, or remove the key to use the shipped templates.")
         dirs.insert(0, folder)
     return tuple(dirs)
@@ -229,7 +258,8 @@ def write_html(markdown_path: Path, html_path: Path, title: str | None = None) -
 
     pandoc = _pandoc_path()
     args = [pandoc, markdown_path.name, "--standalone", "--from", "markdown", "--to", "html5",
-            "--output", html_path.resolve().as_posix(), "--metadata", f"pagetitle={title or markdown_path.stem}"]
+            "--output", html_path.resolve().as_posix(), "--metadata", f"pagetitle={title or markdown_path.stem}",
+            "--variable", "maxwidth=50em"]  # the default 36em column makes the ledger table scroll sideways
     filter_path = Path(__file__).parent / "extension" / "premises-refs.lua"
     if filter_path.is_file():
         args += ["--lua-filter", filter_path.as_posix()]

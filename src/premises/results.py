@@ -297,6 +297,8 @@ def to_jsonable(value: Any) -> Any:
     if isinstance(value, dict):
         return {str(k): to_jsonable(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
+        if all(type(v) is str for v in value):
+            return list(value)  # ids: 10^5-10^6 strings, one call instead of one per string
         return [to_jsonable(v) for v in value]
     if isinstance(value, bool) or value is None or isinstance(value, str):
         return value

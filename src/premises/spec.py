@@ -18,7 +18,7 @@ import json
 import math
 import re
 from collections.abc import Callable, Iterable, Mapping, Sequence
-from dataclasses import dataclass, field, fields, is_dataclass
+from dataclasses import dataclass, field, fields, is_dataclass, replace
 from types import MappingProxyType
 from typing import Any, Literal
 
@@ -31,6 +31,8 @@ __all__ = [
     "ALIASES",
     "ASSUMPTIONS",
     "KEYS",
+    "MAX_BLOCK_CHARS",
+    "MAX_BLOCK_ITEMS",
     "BlockSpec",
     "ExclusionSpec",
     "FigureOptions",
@@ -238,6 +240,12 @@ Kind = Literal[
 
 ID_PATTERN = re.compile(r"[a-z][a-z0-9-]*")
 F_MEDIAN = "F-median"
+MAX_BLOCK_CHARS = 100_000
+"""Longest block body accepted (characters), checked before YAML reads it."""
+MAX_BLOCK_ITEMS = 100_000
+"""Most keys and list items a block may hold once YAML aliases are expanded; a
+block within MAX_BLOCK_CHARS cannot reach it without aliases, so it stops an
+alias "bomb" (each alias repeating the one before) before it is walked."""
 PROBE_N, PROBE_P = 100, 3
 """A typical size at which a threshold expression must give a positive finite cut-off."""
 
@@ -707,6 +715,13 @@ def _record_lines(
     """Map every key path below ``node`` to its document line; reject duplicate keys."""
     if id(node) in stack:  # a recursive alias; the validator rejects the value itself
         return
+    if len(lines) > MAX_BLOCK_ITEMS:
+        raise SpecError(
+            f"The block holds more than {MAX_BLOCK_ITEMS:,} keys and list items once its "
+            "YAML aliases (*name) are expanded.",
+            Location(ctx.file, ctx.fence_line, ctx.block),
+            "Write the values out instead of repeating anchors; a block needs a few dozen keys.",
+        )
     stack = (*stack, id(node))
     if isinstance(node, yaml.MappingNode):
         seen: dict[str, int] = {}
@@ -745,8 +760,25 @@ def _error_line(exc: yaml.MarkedYAMLError, body: str, ctx: _Context) -> int:
     return ctx.fence_line + 1 + last
 
 
+def _with_block_id(node: yaml.Node, ctx: _Context) -> _Context:
+    """Name the block in messages about its YAML when its 'id' is a plain value."""
+    if ctx.block is not None or not isinstance(node, yaml.MappingNode):
+        return ctx
+    for key_node, value_node in node.value:
+        if key_node.value == "id" and isinstance(value_node, yaml.ScalarNode):
+            if isinstance(value_node.value, str) and ID_PATTERN.fullmatch(value_node.value):
+                return replace(ctx, block=value_node.value)
+    return ctx
+
+
 def _load_yaml(body: str, ctx: _Context) -> tuple[dict[str, Any], tuple[tuple[str, int], ...]]:
     """The block's mapping and the document line of every key path."""
+    if len(body) > MAX_BLOCK_CHARS:
+        raise SpecError(
+            f"The block is {len(body):,} characters long, over the limit of {MAX_BLOCK_CHARS:,}.",
+            Location(ctx.file, ctx.fence_line, ctx.block),
+            "Split it into several blocks, or shorten long titles and reasons.",
+        )
     _reject_tabs(body, ctx)
     lines: dict[str, int] = {}
     try:
@@ -755,6 +787,7 @@ def _load_yaml(body: str, ctx: _Context) -> tuple[dict[str, Any], tuple[tuple[st
             node = loader.get_single_node()
             value = None
             if node is not None:
+                ctx = _with_block_id(node, ctx)
                 _record_lines(node, "", ctx, lines)
                 value = loader.construct_document(node)
         finally:
@@ -858,7 +891,9 @@ def _reject(key: Key, value: Any, path: str, ctx: _Context, detail: str | None =
     """The one message template for a value of the wrong type or out of range."""
     problem = f"The '{path}' key must be {_expectation(key)}; got {_show(value)}."
     hint = detail
-    if hint is None and isinstance(value, str) and key.choices:
+    if hint is None and key.kind == "choices" and isinstance(value, str) and value in key.choices:
+        hint = f"Write it as a list: '{path}: [{value}]'."
+    elif hint is None and isinstance(value, str) and key.choices:
         close = difflib.get_close_matches(value, key.choices, n=1)
         hint = f"Did you mean '{close[0]}'?" if close else None
     return ctx.fail(path, problem, hint or f"'{key.name}': {key.description}")

@@ -17,6 +17,7 @@ from premises.checks.base import CheckContext
 from premises.checks.independence import order_values
 from premises.checks.smoothing import SmoothShare, broken_line_share, default_knots
 from premises.checks.variance import full_rank_columns, weighted_residuals
+from premises.lsq import gram_lstsq
 from premises.results import Finding, Statistic, ThresholdUse
 
 __all__ = [
@@ -79,7 +80,11 @@ def _root_weights(weights: np.ndarray | None, n: int) -> np.ndarray:
 
 
 def _rss(x: np.ndarray, y: np.ndarray) -> float:
-    coef, *_ = np.linalg.lstsq(x, y, rcond=None)
+    # Normal equations when well conditioned (premises.lsq.gram_lstsq; the residual sum
+    # of squares is then exact to second order in the coefficients' error), else SVD.
+    coef = gram_lstsq(x, y)
+    if coef is None:
+        coef, *_ = np.linalg.lstsq(x, y, rcond=None)
     r = y - x @ coef
     return float(r @ r)
 

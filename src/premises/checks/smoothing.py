@@ -20,6 +20,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
+from premises.lsq import gram_lstsq
+
 __all__ = [
     "BinnedSmooth",
     "SmoothShare",
@@ -223,8 +225,19 @@ def broken_line_share(
         return SmoothShare(0.0, 0.0, int(inner.size), float("nan"), (0.0, float(n - n_params)), float("nan"))
     centre, spread = float(np.mean(x)), float(np.std(x)) or 1.0
     z, z_knots = (x - centre) / spread, (inner - centre) / spread
-    basis = np.column_stack([np.ones(n), z] + [np.maximum(z - c, 0.0) for c in z_knots])
-    coef, _, rank, _ = np.linalg.lstsq(basis, e, rcond=None)
+    # Filled column by column in column-major order: one (n, k + 2) array, no temporaries.
+    basis = np.empty((n, z_knots.size + 2), order="F")
+    basis[:, 0] = 1.0
+    basis[:, 1] = z
+    for j, c in enumerate(z_knots, start=2):
+        np.subtract(z, c, out=basis[:, j])
+        np.maximum(basis[:, j], 0.0, out=basis[:, j])
+    # Normal equations when the basis is well conditioned (ten times faster than an SVD at
+    # 10^6 rows; premises.lsq.gram_lstsq), else the SVD solve, which also finds the rank.
+    coef = gram_lstsq(basis, e)
+    rank = basis.shape[1]
+    if coef is None:
+        coef, _, rank, _ = np.linalg.lstsq(basis, e, rcond=None)
     fitted = basis @ coef
     within = float(np.sum((e - fitted) ** 2))
     between = max(total - within, 0.0)

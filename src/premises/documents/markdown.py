@@ -272,8 +272,12 @@ def read_front_matter(text: str, file: str | None = None) -> tuple[dict[str, Any
     try:
         value = yaml.safe_load(source)
     except yaml.MarkedYAMLError as exc:
-        mark = exc.problem_mark or exc.context_mark
-        line = mark.line + 2 if mark is not None else 1
+        # A problem found at the end of the text (an unclosed quote, say) is
+        # better placed where its context began.
+        last = len(lines[1 : length - 1]) - 1
+        marks = [m for m in (exc.problem_mark, exc.context_mark) if m is not None]
+        inside = [m for m in marks if m.line <= last] or marks
+        line = inside[0].line + 2 if inside else 1
         raise SpecError(
             f"The front matter is not valid YAML: {exc.problem or exc}.",
             Location(file, line),
