@@ -38,11 +38,11 @@ import pandas as pd
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "src"))
 
-from premises.checks import run_checks  # noqa: E402
-from premises.checks.base import CheckContext  # noqa: E402
-from premises.fit import compute_influence, fit_model  # noqa: E402
-from premises.formula import Design  # noqa: E402
-from premises.spec import ASSUMPTIONS, BlockSpec  # noqa: E402
+from premises.checks import run_checks
+from premises.checks.base import CheckContext
+from premises.fit import compute_influence, fit_model
+from premises.formula import Design
+from premises.spec import ASSUMPTIONS, BlockSpec
 
 SCENARIOS: dict[str, str | None] = {
     "clean": None,
@@ -69,10 +69,16 @@ def _design(frame: pd.DataFrame) -> Design:
     except NotImplementedError:
         x = np.column_stack([np.ones(len(frame)), frame["x1"], frame["x2"]])
         return Design(
-            "y ~ x1 + x2", "y", ("y",), ("x1", "x2"), frame["y"].to_numpy(float), x,
+            "y ~ x1 + x2",
+            "y",
+            ("y",),
+            ("x1", "x2"),
+            frame["y"].to_numpy(float),
+            x,
             ("Intercept", "x1", "x2"),
             (("Intercept", 0, 1), ("x1", 1, 2), ("x2", 2, 3)),
-            (("Intercept", ()), ("x1", ("x1",)), ("x2", ("x2",))), True,
+            (("Intercept", ()), ("x1", ("x1",)), ("x2", ("x2",))),
+            True,
         )
 
 
@@ -128,9 +134,15 @@ def verdicts(job: tuple[str, int, int]) -> tuple[str, int, dict[str, str]]:
     design = _design(frame)
     fit = fit_model(design)
     spec = BlockSpec(id="bench", data="simulated.csv", model=design.formula, **declared)
-    ctx = CheckContext(spec=spec, fit=fit, influence=compute_influence(fit), frame=frame,
-                       ids=np.array([str(i + 1) for i in range(n)], dtype=object),
-                       rows=np.arange(1, n + 1), seed=seed)
+    ctx = CheckContext(
+        spec=spec,
+        fit=fit,
+        influence=compute_influence(fit),
+        frame=frame,
+        ids=np.array([str(i + 1) for i in range(n)], dtype=object),
+        rows=np.arange(1, n + 1),
+        seed=seed,
+    )
     return scenario, n, {f.assumption: f.verdict for f in run_checks(ctx, ASSUMPTIONS)}
 
 
@@ -141,8 +153,11 @@ def summarise(results: list[tuple[str, int, dict[str, str]]], sizes: list[int]) 
     """The detection table and the matrix of flag rates per scenario and check."""
     frame = pd.DataFrame([{"scenario": s, "n": n, **v} for s, n, v in results])
     checks = [c for c in ASSUMPTIONS if c in frame.columns]
-    lines = ["Detection: share of seeds where the scenario's own check says concern or violated",
-             "(clean rows: share where ANY check says concern or violated)", ""]
+    lines = [
+        "Detection: share of seeds where the scenario's own check says concern or violated",
+        "(clean rows: share where ANY check says concern or violated)",
+        "",
+    ]
     header = f"{'scenario':36s} {'check':13s}" + "".join(f"{'n=' + str(n):>10s}" for n in sizes)
     lines += [header, "-" * len(header)]
     for scenario, check in SCENARIOS.items():
@@ -155,15 +170,22 @@ def summarise(results: list[tuple[str, int, dict[str, str]]], sizes: list[int]) 
                 rate = part[check].isin(FLAGS).mean()
             row += f"{rate:10.1%}"
         lines.append(row)
-    lines += ["", "Normality 'violated' rate with t(30) errors: "
-              + ", ".join(f"n={n}: {(frame[(frame.scenario == 't(30) errors') & (frame.n == n)]['normality'] == 'violated').mean():.1%}"
-                          for n in sizes)]
+    lines += [
+        "",
+        "Normality 'violated' rate with t(30) errors: "
+        + ", ".join(
+            f"n={n}: {(frame[(frame.scenario == 't(30) errors') & (frame.n == n)]['normality'] == 'violated').mean():.1%}"
+            for n in sizes
+        ),
+    ]
     for n in sizes:
         lines += ["", f"Flag rate (concern or violated) of every check, n = {n}"]
         lines.append(f"{'scenario':36s}" + "".join(f"{c[:12]:>13s}" for c in checks))
         for scenario in SCENARIOS:
             part = frame[(frame.scenario == scenario) & (frame.n == n)]
-            lines.append(f"{scenario:36s}" + "".join(f"{part[c].isin(FLAGS).mean():13.1%}" for c in checks))
+            lines.append(
+                f"{scenario:36s}" + "".join(f"{part[c].isin(FLAGS).mean():13.1%}" for c in checks)
+            )
     return "\n".join(lines)
 
 

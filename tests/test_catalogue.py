@@ -170,7 +170,8 @@ def _generate(spec: str | dict[str, Any]) -> bytes | None:
     if kind == "empty":
         return b""
     if kind == "huge_line":
-        return b"y,x\n1," + b"9" * int(spec["bytes"]) + b"\n2,3\n"
+        rows = b"".join(b"%d,%d\n" % (i, 3 * i % 7) for i in range(1, 11))
+        return b"y,x\n" + rows + b"11," + b"9" * int(spec["bytes"]) + b"\n"
     if kind == "directory":
         return None
     raise AssertionError(f"unknown generator {kind!r}")
@@ -244,7 +245,7 @@ def build_case(case: Case, root: Path) -> tuple[Path, Path, Path, list[str]]:
     elif "document" in raw:
         document.write_bytes(raw["document"].encode("utf-8"))
     else:
-        block = raw["block"]
+        block = _fill(raw["block"], places)
         for name, (text, times) in (raw.get("expand") or {}).items():
             block = block.replace("{" + name + "}", text * times)
         document.write_bytes(WRAPPER.format(block=block).encode("utf-8"))
@@ -309,7 +310,7 @@ def test_case(case: Case, tmp_path: Path, capsys: pytest.CaptureFixture[str]) ->
 def _check_success(case: Case, run: Run) -> None:
     assert run.code == 0, run.err
     assert run.err == ""
-    text = run.output.read_text(encoding="utf-8")
+    text = run.output.read_bytes().decode("utf-8")  # line ends as written
     for pattern in case.raw.get("output") or ():
         assert re.search(pattern, text), f"output lacks {pattern!r}"
 

@@ -34,18 +34,28 @@ def make_context(frame: pd.DataFrame, formula: str, **keys: Any) -> CheckContext
     fit = fit_model(design)
     spec = BlockSpec(id="blk", data="data.csv", model=formula, **keys)
     n = design.n
-    return CheckContext(spec=spec, fit=fit, influence=compute_influence(fit), frame=frame,
-                        ids=np.array([f"r{i}" for i in range(1, n + 1)], dtype=object),
-                        rows=np.arange(1, n + 1), seed=spec.seed)
+    return CheckContext(
+        spec=spec,
+        fit=fit,
+        influence=compute_influence(fit),
+        frame=frame,
+        ids=np.array([f"r{i}" for i in range(1, n + 1)], dtype=object),
+        rows=np.arange(1, n + 1),
+        seed=spec.seed,
+    )
 
 
 def _frame(n: int = 120, seed: int = 3) -> pd.DataFrame:
     rng = np.random.default_rng(seed)
-    frame = pd.DataFrame({
-        "x": rng.normal(size=n), "z": rng.uniform(0, 4, size=n),
-        "site": rng.choice(["north", "south", "east"], size=n),
-        "week": rng.permutation(n), "team": np.arange(n) % 12,
-    })
+    frame = pd.DataFrame(
+        {
+            "x": rng.normal(size=n),
+            "z": rng.uniform(0, 4, size=n),
+            "site": rng.choice(["north", "south", "east"], size=n),
+            "week": rng.permutation(n),
+            "team": np.arange(n) % 12,
+        }
+    )
     frame["y"] = 2 + frame.x - 0.5 * frame.z + (frame.site == "east") + rng.normal(size=n)
     return frame
 

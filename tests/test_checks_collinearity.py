@@ -18,7 +18,14 @@ from premises.spec import BlockSpec
 
 DATA = Path(__file__).parent / "data" / "vif"
 VALUES = json.loads((DATA / "values.json").read_text())
-NAMES = ["x1 GNP deflator", "x2 GNP", "x3 unemployed", "x4 armed forces", "x5 population", "x6 year"]
+NAMES = [
+    "x1 GNP deflator",
+    "x2 GNP",
+    "x3 unemployed",
+    "x4 armed forces",
+    "x5 population",
+    "x6 year",
+]
 
 
 def make_context(frame: pd.DataFrame, formula: str, **keys: Any) -> CheckContext:
@@ -27,9 +34,15 @@ def make_context(frame: pd.DataFrame, formula: str, **keys: Any) -> CheckContext
     fit = fit_model(design)
     spec = BlockSpec(id="blk", data="data.csv", model=formula, **keys)
     n = design.n
-    return CheckContext(spec=spec, fit=fit, influence=compute_influence(fit), frame=frame,
-                        ids=np.array([str(i) for i in range(1, n + 1)], dtype=object),
-                        rows=np.arange(1, n + 1), seed=spec.seed)
+    return CheckContext(
+        spec=spec,
+        fit=fit,
+        influence=compute_influence(fit),
+        frame=frame,
+        ids=np.array([str(i) for i in range(1, n + 1)], dtype=object),
+        rows=np.arange(1, n + 1),
+        seed=spec.seed,
+    )
 
 
 @pytest.fixture(scope="module")
@@ -64,7 +77,9 @@ def test_check_reports_the_largest_vif_and_warns_against_dropping(longley: pd.Da
     vif = dict(finding.extra)["vif"]
     assert finding.verdict == "violated"  # VIF 1789 >= 10 x 10
     assert finding.measure is not None
-    assert finding.measure.value == pytest.approx(VALUES["computed_diag_inverse_correlation_matrix"]["x2 GNP"], rel=1e-6)
+    assert finding.measure.value == pytest.approx(
+        VALUES["computed_diag_inverse_correlation_matrix"]["x2 GNP"], rel=1e-6
+    )
     assert max(vif, key=vif.get) == "x2"
     assert any("O'Brien" in note for note in finding.notes)
     # Belsley, Kuh & Welsch (1980): condition number of the scaled, uncentred design, from the fit
@@ -82,8 +97,11 @@ def test_generalised_vif_equals_fox_monette_determinant_ratio() -> None:
     # Fox & Monette (1992): GVIF = det(R11) det(R22) / det(R), with separate determinants
     for value, group in zip(ours, groups):
         rest = [k for k in range(5) if k not in group]
-        expected = (np.linalg.det(r[np.ix_(group, group)]) * np.linalg.det(r[np.ix_(rest, rest)])
-                    / np.linalg.det(r))
+        expected = (
+            np.linalg.det(r[np.ix_(group, group)])
+            * np.linalg.det(r[np.ix_(rest, rest)])
+            / np.linalg.det(r)
+        )
         assert value == pytest.approx(expected, rel=1e-10)
     # one column: GVIF is the ordinary VIF
     assert ours[0] == pytest.approx(np.linalg.inv(r)[0, 0], rel=1e-12)
@@ -93,7 +111,9 @@ def test_factor_terms_get_one_generalised_vif() -> None:
     rng = np.random.default_rng(7)
     n = 200
     site = rng.choice(["a", "b", "c", "d"], size=n)
-    frame = pd.DataFrame({"x": rng.normal(size=n) + (site == "d"), "site": site, "z": rng.normal(size=n)})
+    frame = pd.DataFrame(
+        {"x": rng.normal(size=n) + (site == "d"), "site": site, "z": rng.normal(size=n)}
+    )
     frame["y"] = frame.x + rng.normal(size=n)
     finding = check_collinearity(make_context(frame, "y ~ x + C(site) + z"))
     extra = dict(finding.extra)

@@ -34,9 +34,15 @@ def make_context(frame: pd.DataFrame, formula: str, **keys: Any) -> CheckContext
     fit = fit_model(design)
     spec = BlockSpec(id="blk", data="data.csv", model=formula, **keys)
     n = design.n
-    return CheckContext(spec=spec, fit=fit, influence=compute_influence(fit), frame=frame,
-                        ids=np.array([str(i) for i in range(1, n + 1)], dtype=object),
-                        rows=np.arange(1, n + 1), seed=spec.seed)
+    return CheckContext(
+        spec=spec,
+        fit=fit,
+        influence=compute_influence(fit),
+        frame=frame,
+        ids=np.array([str(i) for i in range(1, n + 1)], dtype=object),
+        rows=np.arange(1, n + 1),
+        seed=spec.seed,
+    )
 
 
 @pytest.fixture(scope="module")
@@ -57,7 +63,9 @@ def test_durbin_watson_static_phillips_curve(phillips: pd.DataFrame) -> None:
     assert extra["durbin_watson"] == pytest.approx(PUBLISHED["static_DW"]["value"], abs=0.005)
     assert extra["durbin_watson"] == pytest.approx(COMPUTED["static_DW"], rel=1e-9)
     # AR(1) regression of u_t on u_(t-1): rho = .573, t = 4.93 (Wooldridge 2019, Example 12.1; from memory)
-    assert extra["autocorrelation"] == pytest.approx(PUBLISHED["static_rho_hat"]["value"], abs=0.0005)
+    assert extra["autocorrelation"] == pytest.approx(
+        PUBLISHED["static_rho_hat"]["value"], abs=0.0005
+    )
     statistics = {s.name: s for s in finding.statistics}
     assert statistics["lag-1 autocorrelation"].note == f"t = {COMPUTED['static_rho_t']:.2f}"
     assert finding.verdict == "violated"
@@ -72,7 +80,9 @@ def test_durbin_watson_expectations_augmented_curve(phillips: pd.DataFrame) -> N
     assert extra["durbin_watson"] == pytest.approx(PUBLISHED["augmented_DW"]["value"], abs=0.005)
     assert extra["durbin_watson"] == pytest.approx(COMPUTED["augmented_DW"], rel=1e-9)
     # rho = -.036 (Wooldridge 2019, Example 12.1; from memory)
-    assert extra["autocorrelation"] == pytest.approx(PUBLISHED["augmented_rho_hat"]["value"], abs=0.0005)
+    assert extra["autocorrelation"] == pytest.approx(
+        PUBLISHED["augmented_rho_hat"]["value"], abs=0.0005
+    )
     assert finding.verdict == "holds"
 
 
@@ -127,7 +137,9 @@ def _clustered(icc: float, groups: int, size: int, seed: int) -> pd.DataFrame:
     rng = np.random.default_rng(seed)
     cluster = np.repeat(np.arange(groups), size)
     x = rng.normal(size=cluster.size)
-    error = np.sqrt(icc) * rng.normal(size=groups)[cluster] + np.sqrt(1 - icc) * rng.normal(size=cluster.size)
+    error = np.sqrt(icc) * rng.normal(size=groups)[cluster] + np.sqrt(1 - icc) * rng.normal(
+        size=cluster.size
+    )
     return pd.DataFrame({"y": 1 + x + error, "x": x, "school": [f"s{c}" for c in cluster]})
 
 

@@ -35,9 +35,15 @@ def make_context(frame: pd.DataFrame, formula: str, **keys: Any) -> CheckContext
     fit = fit_model(design)
     spec = BlockSpec(id="blk", data="data.csv", model=formula, **keys)
     n = design.n
-    return CheckContext(spec=spec, fit=fit, influence=compute_influence(fit), frame=frame,
-                        ids=np.array([f"obs{i}" for i in range(1, n + 1)], dtype=object),
-                        rows=np.arange(1, n + 1), seed=spec.seed)
+    return CheckContext(
+        spec=spec,
+        fit=fit,
+        influence=compute_influence(fit),
+        frame=frame,
+        ids=np.array([f"obs{i}" for i in range(1, n + 1)], dtype=object),
+        rows=np.arange(1, n + 1),
+        seed=spec.seed,
+    )
 
 
 def anscombe(which: str) -> CheckContext:
@@ -76,7 +82,9 @@ def test_anscombe_iv_observation_8_is_undefined_not_nan() -> None:
     assert eighth.leverage == pytest.approx(1.0, abs=1e-9)
     assert eighth.studentized is None and eighth.cooks is None and eighth.dffits is None
     assert all(value is None for _, value in eighth.dfbetas)
-    assert eighth.rules == ("leverage 1 (undefined: this observation alone determines a coefficient)",)
+    assert eighth.rules == (
+        "leverage 1 (undefined: this observation alone determines a coefficient)",
+    )
     finding = check_influence(ctx)
     assert finding.verdict == "violated"
     assert finding.measure is not None and finding.measure.value is None
@@ -112,7 +120,9 @@ def test_bonferroni_p_matches_statsmodels_outlier_test() -> None:
     table = OLSInfluence(sm.OLS(y, sm.add_constant(x)).fit()).summary_frame()
     reference = sm.OLS(y, sm.add_constant(x)).fit().outlier_test(method="bonf")
     assert np.allclose(ours, np.asarray(reference)[:, 2], rtol=1e-8)  # columns: t, p, bonf(p)
-    assert np.allclose(ctx.influence.studentized_external, table["student_resid"].to_numpy(), rtol=1e-8)
+    assert np.allclose(
+        ctx.influence.studentized_external, table["student_resid"].to_numpy(), rtol=1e-8
+    )
     assert int(np.argmin(ours)) == 4
 
 
@@ -129,8 +139,11 @@ def test_cutoffs_follow_the_declared_expressions() -> None:
     origins = {(u.name, u.expression): u.origin for u in cut.uses()}
     assert origins[("leverage", "2p/n")] == "Hoaglin & Welsch 1978"
     assert "Bollen & Jackman" in origins[("Cook's distance", "4/n")]
-    declared = make_context(pd.read_csv(DATA / "anscombe.csv").rename(columns={"x1": "x", "y1": "y"}),
-                            "y ~ x", thresholds=Thresholds(cooks="F-median", leverage="3p/n"))
+    declared = make_context(
+        pd.read_csv(DATA / "anscombe.csv").rename(columns={"x1": "x", "y1": "y"}),
+        "y ~ x",
+        thresholds=Thresholds(cooks="F-median", leverage="3p/n"),
+    )
     assert evaluate_cutoffs(declared).cooks == pytest.approx(stats.f.ppf(0.5, p, n - p))
 
 

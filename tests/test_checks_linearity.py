@@ -31,9 +31,15 @@ def make_context(frame: pd.DataFrame, formula: str, **keys: Any) -> CheckContext
     fit = fit_model(design)
     spec = BlockSpec(id="blk", data="data.csv", model=formula, **keys)
     n = design.n
-    return CheckContext(spec=spec, fit=fit, influence=compute_influence(fit), frame=frame,
-                        ids=np.array([str(i) for i in range(1, n + 1)], dtype=object),
-                        rows=np.arange(1, n + 1), seed=spec.seed)
+    return CheckContext(
+        spec=spec,
+        fit=fit,
+        influence=compute_influence(fit),
+        frame=frame,
+        ids=np.array([str(i) for i in range(1, n + 1)], dtype=object),
+        rows=np.arange(1, n + 1),
+        seed=spec.seed,
+    )
 
 
 def _curved(n: int, curvature: float, seed: int) -> pd.DataFrame:
@@ -67,7 +73,9 @@ def test_harvey_collier_matches_statsmodels_when_it_is_defined() -> None:
     ours = harvey_collier(ctx.fit.design.y, ctx.fit.design.X, order)
     index = np.argsort(order)
     # Harvey & Collier (1977) via statsmodels (its slicing is right when p <= 3)
-    reference = linear_harvey_collier(sm.OLS(ctx.fit.design.y[index], ctx.fit.design.X[index]).fit())
+    reference = linear_harvey_collier(
+        sm.OLS(ctx.fit.design.y[index], ctx.fit.design.X[index]).fit()
+    )
     assert ours["t"] == pytest.approx(float(reference.statistic), rel=1e-8)
     assert ours["p"] == pytest.approx(float(reference.pvalue), rel=1e-6)
 
@@ -75,7 +83,9 @@ def test_harvey_collier_matches_statsmodels_when_it_is_defined() -> None:
 def test_harvey_collier_is_defined_with_factor_dummies() -> None:
     rng = np.random.default_rng(3)
     n = 100
-    frame = pd.DataFrame({"x": rng.normal(size=n), "g": rng.choice(list("abcd"), size=n), "t": np.arange(n)})
+    frame = pd.DataFrame(
+        {"x": rng.normal(size=n), "g": rng.choice(list("abcd"), size=n), "t": np.arange(n)}
+    )
     frame["y"] = frame.x + rng.normal(size=n)
     finding = check_linearity(make_context(frame, "y ~ x + C(g)", order="t"))
     hc = next(s for s in finding.statistics if s.name.startswith("Harvey-Collier"))
@@ -117,8 +127,14 @@ def test_broken_line_recovers_most_of_a_quadratic() -> None:
 
 def test_predictor_curves_use_linear_numeric_terms_only() -> None:
     rng = np.random.default_rng(6)
-    frame = pd.DataFrame({"w": rng.uniform(1, 5, size=60), "v": rng.normal(size=60),
-                          "g": rng.choice(["a", "b"], size=60), "d": rng.integers(0, 2, size=60)})
+    frame = pd.DataFrame(
+        {
+            "w": rng.uniform(1, 5, size=60),
+            "v": rng.normal(size=60),
+            "g": rng.choice(["a", "b"], size=60),
+            "d": rng.integers(0, 2, size=60),
+        }
+    )
     frame["y"] = frame.v + rng.normal(size=60)
     ctx = make_context(frame, "y ~ log(w) + I(w**2) + v + C(g) + d + v:d")
     assert [term for term, _ in predictor_curves(ctx)] == ["log(w)", "v"]

@@ -34,9 +34,15 @@ def make_context(frame: pd.DataFrame, formula: str, **keys: Any) -> CheckContext
     fit = fit_model(design)
     spec = BlockSpec(id="blk", data="data.csv", model=formula, **keys)
     n = design.n
-    return CheckContext(spec=spec, fit=fit, influence=compute_influence(fit), frame=frame,
-                        ids=np.array([str(i) for i in range(1, n + 1)], dtype=object),
-                        rows=np.arange(1, n + 1), seed=spec.seed)
+    return CheckContext(
+        spec=spec,
+        fit=fit,
+        influence=compute_influence(fit),
+        frame=frame,
+        ids=np.array([str(i) for i in range(1, n + 1)], dtype=object),
+        rows=np.arange(1, n + 1),
+        seed=spec.seed,
+    )
 
 
 def test_shapiro_wilk_weights_of_eleven_men() -> None:
@@ -126,7 +132,10 @@ def test_heavy_or_skewed_errors_are_flagged(kind: str) -> None:
 
 def test_t30_errors_at_large_n_are_not_violated_although_a_test_may_reject() -> None:
     # Lumley et al. (2002): at large n the CLT carries coefficient inference.
-    verdicts = [check_normality(make_context(_errors("t30", 2000, seed), "y ~ x")).verdict for seed in range(10)]
+    verdicts = [
+        check_normality(make_context(_errors("t30", 2000, seed), "y ~ x")).verdict
+        for seed in range(10)
+    ]
     assert verdicts.count("violated") == 0
 
 

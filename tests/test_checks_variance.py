@@ -36,9 +36,15 @@ def make_context(frame: pd.DataFrame, formula: str, **keys: Any) -> CheckContext
     fit = fit_model(design)
     spec = BlockSpec(id="blk", data="data.csv", model=formula, **keys)
     n = design.n
-    return CheckContext(spec=spec, fit=fit, influence=compute_influence(fit), frame=frame,
-                        ids=np.array([str(i) for i in range(1, n + 1)], dtype=object),
-                        rows=np.arange(1, n + 1), seed=spec.seed)
+    return CheckContext(
+        spec=spec,
+        fit=fit,
+        influence=compute_influence(fit),
+        frame=frame,
+        ids=np.array([str(i) for i in range(1, n + 1)], dtype=object),
+        rows=np.arange(1, n + 1),
+        seed=spec.seed,
+    )
 
 
 @pytest.fixture(scope="module")
@@ -55,11 +61,17 @@ def test_breusch_pagan_matches_wooldridge_example_8_4(hprice: pd.DataFrame) -> N
     ctx = make_context(hprice, "price ~ lotsize + sqrft + bdrms")
     bp = breusch_pagan(ctx.fit.resid, ctx.fit.design.X[:, 1:])
     # Koenker's LM = n R^2 = 14.09, p = .0028, F = 5.34 (Wooldridge 2019, Example 8.4; from memory)
-    assert bp["koenker_lm"] == pytest.approx(PUBLISHED["koenker_LM"]["value"], abs=_half_unit("14.09"))
-    assert bp["koenker_p"] == pytest.approx(PUBLISHED["koenker_LM_pvalue"]["value"], abs=_half_unit(".0028"))
+    assert bp["koenker_lm"] == pytest.approx(
+        PUBLISHED["koenker_LM"]["value"], abs=_half_unit("14.09")
+    )
+    assert bp["koenker_p"] == pytest.approx(
+        PUBLISHED["koenker_LM_pvalue"]["value"], abs=_half_unit(".0028")
+    )
     assert bp["f"] == pytest.approx(PUBLISHED["bp_F"]["value"], abs=_half_unit("5.34"))
     # Original (normal-errors) LM = 30.02 (Stata hettest handout 'Hetero-Stata', not from memory)
-    assert bp["original_lm"] == pytest.approx(PUBLISHED["bp_original_chi2_3"]["value"], abs=_half_unit("30.02"))
+    assert bp["original_lm"] == pytest.approx(
+        PUBLISHED["bp_original_chi2_3"]["value"], abs=_half_unit("30.02")
+    )
     assert bp["df"] == 3
     # statsmodels het_breuschpagan as the general-purpose reference, full precision (values.json)
     assert bp["koenker_lm"] == pytest.approx(COMPUTED["koenker_LM"], rel=1e-9)
@@ -72,8 +84,12 @@ def test_breusch_pagan_on_the_log_model(hprice: pd.DataFrame) -> None:
     bp = breusch_pagan(ctx.fit.resid, ctx.fit.design.X[:, 1:])
     # LM = 4.22, p = .239 (Wooldridge 2019, Example 8.4, log model; from memory, so within one
     # unit of the last printed digit: the remembered p may be rounded up from .2383)
-    assert bp["koenker_lm"] == pytest.approx(PUBLISHED["log_model_LM"]["value"], abs=_half_unit("4.22"))
-    assert bp["koenker_p"] == pytest.approx(PUBLISHED["log_model_LM_pvalue"]["value"], abs=2 * _half_unit(".239"))
+    assert bp["koenker_lm"] == pytest.approx(
+        PUBLISHED["log_model_LM"]["value"], abs=_half_unit("4.22")
+    )
+    assert bp["koenker_p"] == pytest.approx(
+        PUBLISHED["log_model_LM_pvalue"]["value"], abs=2 * _half_unit(".239")
+    )
     # statsmodels het_breuschpagan, full precision (values.json)
     assert bp["koenker_p"] == pytest.approx(COMPUTED["log_model_LM_pvalue"], rel=1e-8)
 
@@ -85,6 +101,8 @@ def test_white_test_matches_statsmodels_on_hprice(hprice: pd.DataFrame) -> None:
     lm, p, f, f_p = COMPUTED["white_full_levels"]
     assert white["lm"] == pytest.approx(lm, rel=1e-8)
     assert white["p"] == pytest.approx(p, rel=1e-6)
+    assert white["f"] == pytest.approx(f, rel=1e-8)
+    assert white["f_p"] == pytest.approx(f_p, rel=1e-6)
     assert white["df"] == 9
 
 

@@ -7,7 +7,7 @@ draws the figures, computes the sensitivity rows and stamps the provenance.
 from __future__ import annotations
 
 import hashlib
-import platform
+import re
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -67,16 +67,10 @@ class PreparedBlock:
 
 
 def library_versions() -> tuple[tuple[str, str], ...]:
-    """Versions that can change a number in the output."""
-    from importlib.metadata import PackageNotFoundError, version
+    """Versions that can change a number in the output (the same list the cache keys on)."""
+    from premises.cache import library_versions as versions
 
-    out = [("premises", __version__), ("python", platform.python_version())]
-    for name in ("numpy", "pandas", "scipy", "statsmodels", "patsy", "matplotlib", "jinja2"):
-        try:
-            out.append((name, version(name)))
-        except PackageNotFoundError:
-            out.append((name, "absent"))
-    return tuple(out)
+    return versions()
 
 
 def _sha(text: str) -> str:
@@ -188,15 +182,15 @@ def _choose_se(spec: BlockSpec, findings: tuple[Finding, ...]) -> _SEChoice:
     variance = next((f for f in findings if f.assumption == "variance"), None)
     advised = bool(dict(variance.extra).get("hc3_advised")) if variance is not None else False
     if spec.se == "classical":
-        return _SEChoice("classical", "declared in the block (se: classical)", "hc3" if advised else None)
+        return _SEChoice("classical", "they were declared in the block (se: classical)", "hc3" if advised else None)
     if spec.se == "hc3":
-        return _SEChoice("hc3", "declared in the block (se: hc3)", "hc3")
+        return _SEChoice("hc3", "they were declared in the block (se: hc3)", "hc3")
     if spec.se == "cluster":
-        return _SEChoice("cluster", f"declared in the block (se: cluster, groups: {spec.groups})", "cluster")
+        return _SEChoice("cluster", f"they were declared in the block (se: cluster, groups: {spec.groups})", "cluster")
     if spec.groups is not None:
         return _SEChoice(
             "cluster",
-            f"groups are declared ({spec.groups}), so standard errors allow for correlation within groups",
+            f"groups are declared ({spec.groups}) and rows in the same group may share conditions",
             "cluster",
         )
     if advised:
@@ -262,6 +256,54 @@ def _refit_row(
     except PremisesError as exc:
         return SensitivityRow(label=label, description=f"{description} (could not be fitted: {exc.problem})", n=0, coefficients=())
     return SensitivityRow(label=label, description=description, n=fit.n, coefficients=coefs, changed=_changed(reported, coefs))
+
+
+_ROW_WISE_OPS = frozenset({"log", "log2", "log10", "sqrt"})
+_STATEFUL = re.compile(r"\b(center|standardize|scale)\s*\(")
+
+
+def _rows_refit_exactly(spec: BlockSpec, design: Design) -> bool:
+    """Whether dropping rows from the design equals rebuilding it from the ledger without them.
+
+    True when every transform works row by row (rank, z-score, winsorize, and
+    the formula's center, standardize and scale depend on which rows remain)
+    and no design column codes a factor (a level could vanish with the rows).
+    """
+    return (
+        all(t.op in _ROW_WISE_OPS for t in spec.transforms)
+        and _STATEFUL.search(spec.model) is None
+        and not any("[" in name for name in design.column_names)
+    )
+
+
+def _subset_row(
+    label: str,
+    description: str,
+    ctx: CheckContext,
+    keep: np.ndarray,
+    choice: _SEChoice,
+    reported: tuple[Coefficient, ...],
+    groups: np.ndarray | None,
+) -> SensitivityRow:
+    """:func:`_refit_row` for rows left out of the reported design (see :func:`_rows_refit_exactly`).
+
+    The same numbers without reading the ledger and building the design again
+    (at 10^6 rows the rebuild costs as much as the fit).
+    """
+    from premises.fit import fit_model
+
+    fit = ctx.fit
+    design = replace(fit.design, y=fit.design.y[keep], X=fit.design.X[keep])
+    try:
+        try:
+            sub = fit_model(design, None if fit.weights is None else fit.weights[keep])
+        except PremisesError as exc:
+            raise type(exc)(exc.problem, ctx.spec.locate("model"), hint=exc.hint) from exc
+        cov, _, df = _covariances(sub, choice, None if groups is None else groups[keep])
+        coefs = _coefficients(sub, cov, None, df)
+    except PremisesError as exc:
+        return SensitivityRow(label=label, description=f"{description} (could not be fitted: {exc.problem})", n=0, coefficients=())
+    return SensitivityRow(label=label, description=description, n=sub.n, coefficients=coefs, changed=_changed(reported, coefs))
 
 
 def _formula_transforms(spec: BlockSpec) -> tuple[Any, ...]:
@@ -353,6 +395,7 @@ def analyse_block(
         se_used=choice.used,
         se_reason=choice.reason,
         se_robust_kind=choice.robust_kind,
+        se_data_driven=spec.se == "auto" and spec.groups is None and choice.used == "hc3",
         checks=findings,
         flagged=flagged,
         figures=figures,
@@ -384,13 +427,13 @@ def _sensitivity(
         rows.append(_refit_row("exclusions undone", "every declared exclusion put back", prepared, choice, reported, apply_exclusions=False))
     if flagged:
         ids = frozenset(p.id for p in flagged)
-        rows.append(
-            _refit_row(
-                "flagged points removed",
-                f"the {len(ids)} flagged observation{'s' if len(ids) != 1 else ''} left out (a check, not a recommendation)",
-                prepared, choice, reported, drop_ids=ids,
-            )
-        )
+        label = "flagged points removed"
+        description = f"the {len(ids)} flagged observation{'s' if len(ids) != 1 else ''} left out (a check, not a recommendation)"
+        keep = ~np.isin(ctx.rows, [p.row for p in flagged])
+        if keep.any() and _rows_refit_exactly(spec, ctx.fit.design):
+            rows.append(_subset_row(label, description, ctx, keep, choice, reported, groups))
+        else:
+            rows.append(_refit_row(label, description, prepared, choice, reported, drop_ids=ids))
     rows += _se_rows(ctx.fit, choice, groups, reported)
     if spec.alternatives:
         for row in fit_alternatives(ctx, spec.alternatives):

@@ -74,9 +74,24 @@ def library_versions() -> tuple[tuple[str, str], ...]:
     the provenance; a test keeps the two equal.
     """
     # sys.version's first word is what platform.python_version() returns; platform costs an import.
-    out = [("premises", __version__), ("python", sys.version.split()[0])]
+    out = [("premises", __version__), ("premises-code", code_fingerprint()), ("python", sys.version.split()[0])]
     out += [(name, _installed_version(name)) for name in VERSIONED_LIBRARIES]
     return tuple(out)
+
+
+def code_fingerprint() -> str:
+    """Short hash of the package's own Python files.
+
+    The version number alone does not change while the code is edited (an
+    editable install, a development checkout); a result computed by other code
+    must not be served from the store as if it were current.
+    """
+    package = Path(__file__).resolve().parent
+    digest = hashlib.sha256()
+    for path in sorted(package.rglob("*.py")):
+        digest.update(path.relative_to(package).as_posix().encode())
+        digest.update(path.read_bytes())
+    return digest.hexdigest()[:12]
 
 
 def _installed_version(name: str) -> str:

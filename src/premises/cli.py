@@ -30,8 +30,19 @@ def _add_render(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-a
     p.add_argument("--flavor", choices=("quarto", "pandoc", "gfm"), default="quarto", help="Markdown dialect (default quarto)")
     p.add_argument("--to", choices=("md", "html"), default="md", help="html also writes <output>.html with pandoc")
     p.add_argument("--detail", choices=("brief", "full"), help="override every block's detail")
+    p.add_argument("--jobs", type=_jobs, default=1, help="blocks computed in parallel worker processes (default 1; 0: one per CPU); the output is the same")
     _add_common(p)
     p.set_defaults(run=_run_render)
+
+
+def _jobs(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number of worker processes, got {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"the number of jobs must be 0 (one per CPU) or more, got {text!r}")
+    return value
 
 
 def _add_common(p: argparse.ArgumentParser) -> None:
@@ -78,7 +89,7 @@ def _tolerance(text: str) -> float:
 def _run_render(args: argparse.Namespace) -> int:
     from premises.pipeline import default_output, render_file, write_html
 
-    options = _options(args, flavor=args.flavor if args.to == "md" else "pandoc", detail=args.detail)
+    options = _options(args, flavor=args.flavor if args.to == "md" else "pandoc", detail=args.detail, jobs=args.jobs)
     output = args.output or default_output(args.document)
     done = render_file(args.document, output, options, json_path=args.json_path)
     print(f"wrote {output}")

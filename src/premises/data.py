@@ -60,7 +60,7 @@ def _read_delimited(path: Path, sep: str) -> pd.DataFrame:
     except pd.errors.ParserError as exc:
         raise DataError(
             f"the file could not be parsed as {'tab' if sep == chr(9) else 'comma'}-separated text: "
-            f"{str(exc).strip()}",
+            f"{str(exc).strip().rstrip('.')}.",
             hint="Check the delimiter and quoting, or use a .tsv/.csv extension that matches.",
         ) from exc
 
@@ -149,6 +149,8 @@ def resolve_data_path(
         exists, is_file = resolved.exists(), resolved.is_file()
     except OSError as exc:
         raise _path_problem(data, where, exc) from exc
+    if not exists and candidate.is_symlink():
+        raise DataError(f"the data file '{data}' is a symbolic link to a file that does not exist.", where, hint="Point the link at the data file, or name the file itself.")
     if not exists:
         nearby = sorted(p.name for p in resolved.parent.glob("*"))[:8] if resolved.parent.is_dir() else []
         hint = "Check the path; it is relative to the document's folder."
@@ -178,7 +180,8 @@ def _path_problem(data: str, where: Location, exc: BaseException) -> DataError:
         reason = "the name is too long for this system"
     else:
         reason = getattr(exc, "strerror", None) or str(exc)
-    return DataError(f"the data path '{data}' cannot be used: {reason}.", where, hint="Check the path and any links along it.")
+    shown = data if len(data) <= 80 else data[:60] + f"... ({len(data)} characters)"
+    return DataError(f"the data path '{shown}' cannot be used: {reason}.", where, hint="Check the path and any links along it.")
 
 def _sha256(path: Path) -> str:
     digest = hashlib.sha256()
@@ -317,7 +320,7 @@ def load_table(
         raise DataError(f"cannot read '{data}': {exc.problem}", where, hint=exc.hint) from exc
     except Exception as exc:  # noqa: BLE001 - readers of binary formats raise many kinds (BadZipFile, ArrowInvalid, ...)
         raise DataError(
-            f"cannot read '{data}' as {fmt}: {str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__}.",
+            f"cannot read '{data}' as {fmt}: {str(exc).strip().splitlines()[0].rstrip('.') if str(exc).strip() else type(exc).__name__}.",
             where,
             hint="Check that the file is a valid " + fmt + " file.",
         ) from exc

@@ -11,6 +11,7 @@ result (a ``Finding``), never an exception.
     ├── DataError(ValueError)          the data file or its columns cannot serve the block
     ├── ModelError(ValueError)         the model cannot be fitted to these rows
     ├── DriftError(ValueError)         an ``expect:`` or ``pin:`` guard no longer holds
+    ├── OutputError(OSError)           an output path cannot be written (a folder, below a file, no space)
     ├── RenderError(RuntimeError)      a template failed to render
     └── PandocError(OSError)           pandoc was missing or failed
 
@@ -27,6 +28,7 @@ __all__ = [
     "DriftError",
     "Location",
     "ModelError",
+    "OutputError",
     "PandocError",
     "PremisesError",
     "RenderError",
@@ -122,6 +124,10 @@ class ModelError(PremisesError, ValueError):
 
 class DriftError(PremisesError, ValueError):
     """A guard (``expect:`` or ``pin:``) on an exclusion rule no longer holds."""
+
+
+class OutputError(PremisesError, OSError):
+    """An output (document, JSON, figures) cannot be written where the command line says."""
 
 
 class RenderError(PremisesError, RuntimeError):

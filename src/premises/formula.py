@@ -590,7 +590,7 @@ def _read_formula(
         description = patsy.ModelDesc.from_formula(text)
     except patsy.PatsyError as exc:
         raise SpecError(
-            f"The model formula `{_shorten(formula)}` cannot be read: {str(exc).splitlines()[0]}",
+            f"The model formula `{_shorten(formula)}` cannot be read: {str(exc).splitlines()[0].rstrip('.')}.",
             location,
             "Write it as `outcome ~ term + term`, e.g. `yield ~ log2(water) + ph + C(district)`.",
         ) from exc

@@ -148,6 +148,13 @@ def _apply_exclusions(
                 spec.locate(rule.key + ".expect"),
                 hint="Look at the rows it now matches; update 'expect' only if the change is intended.",
             )
+        if matched and matched == len(frame):
+            raise DataError(
+                f"the rule '{rule.rule_text}' at {rule.key} matches all {matched} remaining rows, "
+                "so no rows are left to analyse.",
+                spec.locate(rule.key + (".when" if rule.when is not None else ".ids")),
+                hint="Check the rule's direction (> or <) and the column's units against the data.",
+            )
         removed = tuple(compress(ids, mask))
         matched_all.append((rule.key, removed))
         before = len(frame)
@@ -186,13 +193,24 @@ def _check_numeric_text(spec: BlockSpec, frame: pd.DataFrame, columns: tuple[str
         if share >= 0.8 and share < 1.0:
             bad = present[numbers.isna()]
             where_ids = [ids[frame.index.get_loc(i)] for i in bad.index[:5]]
+            example = str(bad.iloc[0])
+            rule = f" such as `{column} in [{example!r}]`" if len(example) <= _QUOTE_LIMIT else ""
             raise DataError(
                 f"the column '{column}' holds numbers and {len(bad)} text entries "
-                f"(e.g. {bad.iloc[0]!r} in row {where_ids[0]}).",
+                f"(e.g. {_quote(example)} in row {where_ids[0]}).",
                 spec.locate("model"),
-                hint="Fix or blank those entries, or exclude them with a rule such as "
-                f"`{column} in [{bad.iloc[0]!r}]` and a reason.",
+                hint=f"Fix or blank those entries, or exclude them with a rule{rule} and a reason.",
             )
+
+
+_QUOTE_LIMIT = 40
+"""Longest data value quoted whole in a message; longer ones are cut (a message stays one line)."""
+
+
+def _quote(text: str) -> str:
+    if len(text) <= _QUOTE_LIMIT:
+        return repr(text)
+    return f"'{text[:_QUOTE_LIMIT]}...' ({len(text)} characters)"
 
 
 def _check_finite(spec: BlockSpec, frame: pd.DataFrame, columns: tuple[str, ...], ids: list[str]) -> None:
@@ -221,6 +239,15 @@ def _drop_missing(
         return frame, ids, []
     missing = frame[present].isna()
     counts = tuple((c, int(missing[c].sum())) for c in present)
+    empty = next((c for c, k in counts if k and k == len(frame)), None)
+    if empty is not None:
+        left = " left after the exclusions" if spec.exclude else ""
+        raise DataError(
+            f"the column '{empty}' has no values: it is missing in all {len(frame)} rows{left}.",
+            spec.locate(_key_naming(spec, empty)),
+            hint="Check the column in the data file (a shifted header or a wrong delimiter?), "
+            "or leave it out of the block.",
+        )
     row_missing = missing.any(axis=1).to_numpy()
     n_missing = int(row_missing.sum())
     if n_missing and spec.missing == "error":
@@ -246,6 +273,54 @@ def _drop_missing(
         frame = frame.loc[~row_missing]
         ids = list(compress(ids, ~row_missing))
     return frame, ids, [step]
+
+
+def _key_naming(spec: BlockSpec, column: str) -> str:
+    """The block key that names ``column`` (the model unless a role or a transform does)."""
+    for key in ("weights", "groups", "order"):
+        if getattr(spec, key) == column:
+            return key
+    return next((t.key for t in spec.transforms if t.column == column), "model")
+
+
+def _check_weights(spec: BlockSpec, frame: pd.DataFrame) -> None:
+    """Weights must be numbers (text would fail deep in the fit)."""
+    import pandas as pd
+
+    if spec.weights is not None:
+        series = frame[spec.weights]
+        if not pd.api.types.is_numeric_dtype(series):
+            example = series.dropna().iloc[0] if series.notna().any() else None
+            raise DataError(
+                f"the weights column '{spec.weights}' is not numeric (it holds {example!r}).",
+                spec.locate("weights"),
+                hint="Name a column of positive numbers, such as inverse variances.",
+            )
+
+
+def _check_groups(spec: BlockSpec, frame: pd.DataFrame) -> None:
+    """Standard errors that allow for groups (se: auto or cluster with groups) need two groups."""
+    if spec.groups is not None and spec.se in ("auto", "cluster") and len(frame):
+        values = frame[spec.groups].dropna().unique()
+        if len(values) == 1:
+            raise DataError(
+                f"the groups column '{spec.groups}' has one value ({values[0]!r}) in all "
+                f"{len(frame)} analysed rows; standard errors that allow for groups need two at least.",
+                spec.locate("groups"),
+                hint="Check the column, or remove 'groups:' and choose se: hc3 or classical.",
+            )
+
+
+def _no_rows_left(spec: BlockSpec, steps: list[LedgerStep], read: int) -> DataError:
+    excluded = sum(s.matched for s in steps if s.kind == "exclude")
+    missing = sum(s.matched for s in steps if s.kind == "missing")
+    return DataError(
+        f"no rows are left to analyse: of {read} rows read, the exclusions removed {excluded} "
+        f"and missing values {missing}.",
+        spec.locate("exclude" if spec.exclude and excluded else "model"),
+        hint="Check the exclusion rules and the missing-value counts per column "
+        "(missing: drop removes a row missing any column the block uses).",
+    )
 
 
 def _transform_values(spec: BlockSpec, t: TransformSpec, frame: pd.DataFrame, ids: list[str]) -> np.ndarray:
@@ -362,6 +437,8 @@ def apply_ledger(
         c for c in (spec.weights, spec.groups, spec.order) if c is not None and c not in data_columns
     )
     _check_numeric_text(spec, frame, needed, ids)
+    _check_weights(spec, frame)
+    read = len(frame)
     steps: list[LedgerStep] = []
     matched: list[tuple[str, tuple[str, ...]]] = []
     if apply_exclusions:
@@ -376,11 +453,8 @@ def apply_ledger(
         frame = frame.loc[keep]
         ids = list(compress(ids, keep))
     if len(frame) == 0:
-        raise DataError(
-            "no rows are left to analyse after the exclusions and missing values.",
-            spec.locate("exclude" if spec.exclude else "model"),
-            hint="Check the exclusion rules and the missing-value counts in the ledger.",
-        )
+        raise _no_rows_left(spec, steps, read)
+    _check_groups(spec, frame)
     frame, transform_steps = _apply_transforms(spec, frame, ids, formula_transforms)
     steps += transform_steps
     rows = frame.index.to_numpy(dtype=np.int64)

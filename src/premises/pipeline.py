@@ -9,13 +9,14 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import re
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Mapping, Sequence
 
 from premises._version import FORMAT_VERSION
-from premises.errors import Location, PandocError, SpecError
+from premises.errors import Location, OutputError, PandocError, PremisesError, SpecError
 from premises.files import atomic_write_text
 from premises.results import DocumentResult, to_jsonable
 from premises.spec import BlockSpec
@@ -29,6 +30,7 @@ __all__ = [
     "parse_document",
     "render_file",
     "render_text",
+    "worker_count",
     "write_html",
 ]
 
@@ -57,6 +59,8 @@ class RenderOptions:
     """The result store; None: ``.premises/`` in the project root."""
     change_tolerance: float = 0.5
     """Change log: coefficient moves beyond this many standard errors are listed (``--tolerance``)."""
+    jobs: int = 1
+    """Worker processes for a document's blocks (``--jobs``); 0: one per CPU. Output bytes do not depend on it."""
 
 
 @dataclass(frozen=True)
@@ -157,28 +161,31 @@ def template_fingerprint(dirs: Sequence[Path]) -> str:
     return digest.hexdigest()
 
 
-def render_text(text: str, document: Path, output: Path, options: RenderOptions) -> RenderedDocument:
-    """Render ``text`` (the contents of ``document``) as if written to ``output``."""
+def render_text(text: str, document: Path, output: Path, options: RenderOptions, *, figure_stage: Path | None = None) -> RenderedDocument:
+    """Render ``text`` (the contents of ``document``) as if written to ``output``.
+
+    Figures go to the figure folder beside ``output``, or to ``figure_stage``
+    when given (the caller moves them once every block has rendered).
+    """
     from premises.cache import block_from_json, library_versions
     from premises.documents.markdown import splice
-    from premises.staleness import BlockJob, open_cache, render_block
+    from premises.staleness import BlockJob, open_cache
 
     document_dir = document.parent
     raws, specs = parse_document(text, str(document), document_dir=document_dir, cli_settings=options.cli_settings)
     figure_dir = _figure_dir(document, output)
     rel = figure_dir.relative_to(output.parent).as_posix() if figure_dir.is_relative_to(output.parent) else figure_dir.as_posix()
-    blocks_json: list[dict[str, Any]] = []
-    sections: list[str] = []
     store = open_cache(document, options) if specs else None
     versions = library_versions() if store is not None else None
+    jobs = []
     for spec in specs:
         if options.detail:
             spec = replace(spec, detail=options.detail)
         dirs = _template_dirs(spec, document_dir, options)
-        job = BlockJob(spec, document, output, figure_dir, rel, dirs, template_fingerprint(dirs))
-        block_json, section = render_block(job, options, store, versions)
-        blocks_json.append(block_json)
-        sections.append(section)
+        jobs.append(BlockJob(spec, document, output, figure_stage or figure_dir, rel, dirs, template_fingerprint(dirs)))
+    rendered = _render_blocks(jobs, options, store, versions)
+    blocks_json = [block_json for block_json, _ in rendered]
+    sections = [section for _, section in rendered]
     results = [block_from_json(b) for b in blocks_json]
     out_text = splice(text, raws, sections) if raws else text
     return RenderedDocument(
@@ -190,11 +197,78 @@ def render_text(text: str, document: Path, output: Path, options: RenderOptions)
     )
 
 
+def worker_count(jobs: int, blocks: int) -> int:
+    """Worker processes for ``blocks`` blocks: ``jobs`` (0: one per CPU), never more than the blocks."""
+    wanted = jobs if jobs > 0 else (os.cpu_count() or 1)
+    return max(1, min(wanted, blocks))
+
+
+@dataclass(frozen=True)
+class _Failure:
+    """A user error raised in a worker, carried back field by field (its pickled form loses them)."""
+
+    kind: type[PremisesError]
+    problem: str
+    location: Location
+    hint: str | None
+
+    def rebuild(self) -> PremisesError:
+        return self.kind(self.problem, self.location, hint=self.hint)
+
+
+def _render_in_worker(job: Any, options: RenderOptions, versions: tuple[tuple[str, str], ...] | None) -> tuple[dict[str, Any], str] | _Failure:
+    """One block in a worker process (top level, so it pickles): the store is opened here."""
+    from premises.staleness import open_cache, render_block
+
+    try:
+        return render_block(job, options, open_cache(job.document, options), versions)
+    except PremisesError as exc:
+        return _Failure(type(exc), exc.problem, exc.location, exc.hint)
+
+
+def _share_threads(workers: int) -> None:
+    """Worker initializer: split the CPUs between the workers' BLAS threads (before numpy loads)."""
+    share = str(max(1, (os.cpu_count() or 1) // workers))
+    for name in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ.setdefault(name, share)
+
+
+def _render_blocks(jobs: Sequence[Any], options: RenderOptions, store: Any, versions: tuple[tuple[str, str], ...] | None) -> list[tuple[dict[str, Any], str]]:
+    """Each block's (result JSON, section), in document order; in worker processes when ``options.jobs`` allows.
+
+    Workers write their figures and store records atomically, under names of
+    their own block; the document is assembled here, in order, so its bytes
+    do not depend on the number of workers. The first failing block in
+    document order raises its error, as a serial render would.
+    """
+    from premises.staleness import render_block
+
+    workers = worker_count(options.jobs, len(jobs))
+    if workers == 1:
+        return [render_block(job, options, store, versions) for job in jobs]
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    # spawn: fresh interpreters, safe whatever threads the parent (BLAS, a host program) runs.
+    pool = ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"), initializer=_share_threads, initargs=(workers,))
+    out: list[tuple[dict[str, Any], str]] = []
+    try:
+        for outcome in pool.map(_render_in_worker, jobs, [options] * len(jobs), [versions] * len(jobs)):
+            if isinstance(outcome, _Failure):
+                raise outcome.rebuild()
+            out.append(outcome)
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+    return out
+
+
 def _read_document(path: Path) -> str:
     try:
         raw = path.read_bytes()
     except FileNotFoundError as exc:
         raise SpecError(f"the document '{path}' does not exist.", hint="Check the path.") from exc
+    except IsADirectoryError as exc:
+        raise SpecError(f"the document '{path}' is a folder.", hint="Name the Markdown or Quarto file itself.") from exc
     except OSError as exc:
         raise SpecError(f"the document '{path}' cannot be read: {exc.strerror}.", hint="Check its permissions.") from exc
     try:
@@ -219,16 +293,55 @@ def render_file(
     >>> done.output.name  # doctest: +SKIP
     'report.premises.md'
     """
+    import tempfile
+
+    from premises.staleness import _place_figures
+
     options = options or RenderOptions()
     output = output or default_output(path)
     if output.resolve() == path.resolve():
         raise SpecError(f"the output '{output}' is the source document.", Location(str(path)), hint="Choose another output path (-o); the source is never overwritten.")
+    if json_path is not None and json_path.resolve() == path.resolve():
+        raise SpecError(f"the JSON output '{json_path}' is the source document.", Location(str(path)), hint="Choose another path for --json; the source is never overwritten.")
+    for target, what in ((output, "output"), (json_path, "JSON output"), (_figure_dir(path, output), "figures folder")):
+        if target is not None:
+            _check_writable(target, what, folder=what == "figures folder")
     text = _read_document(path)
-    rendered = render_text(text, path, output, options)
-    if json_path is not None:
-        write_json(rendered.result, json_path, rendered.blocks_json)
-    atomic_write_text(output, rendered.text)
+    # Nothing is written until every block has rendered: a failing block leaves the
+    # previous output and its figures as they were.
+    with tempfile.TemporaryDirectory(prefix="premises-figures-") as staged:
+        rendered = render_text(text, path, output, options, figure_stage=Path(staged))
+        _refuse_data_targets(rendered, path, output, json_path)
+        try:
+            _place_figures(rendered.figure_dir, {p.name: p.read_bytes() for p in sorted(Path(staged).iterdir()) if p.is_file()})
+            if json_path is not None:
+                write_json(rendered.result, json_path, rendered.blocks_json)
+            atomic_write_text(output, rendered.text)
+        except OSError as exc:
+            folder = Path(exc.filename).parent if exc.filename else output.parent  # the file itself is a temporary name
+            raise OutputError(f"cannot write the outputs in '{folder}': {exc.strerror or exc}.", hint="Check that the folder is writable and has space.") from exc
     return rendered
+
+
+def _check_writable(target: Path, what: str, *, folder: bool = False) -> None:
+    """Refuse an output path that is a folder (or, for a folder, a file) or lies below a file."""
+    if not folder and target.is_dir():
+        raise OutputError(f"cannot write the {what} '{target}': it is a folder.", hint="Give a file name, e.g. -o report.premises.md.")
+    if folder and target.exists() and not target.is_dir():
+        raise OutputError(f"cannot write the {what} '{target}': a file of that name is in the way.", hint="Move the file, or choose another output name (-o).")
+    for parent in target.parents:
+        if parent.exists():
+            if not parent.is_dir():
+                raise OutputError(f"cannot write the {what} '{target}': '{parent}' is a file, not a folder.", hint="Choose an output path in a folder.")
+            return
+
+
+def _refuse_data_targets(rendered: RenderedDocument, document: Path, output: Path, json_path: Path | None) -> None:
+    """A data file is never overwritten, even when -o or --json names it."""
+    data = {(document.parent / b["data"]["path"]).resolve() for b in rendered.blocks_json if isinstance(b.get("data"), Mapping) and b["data"].get("path")}
+    for target in (output, json_path):
+        if target is not None and target.resolve() in data:
+            raise SpecError(f"the output '{target}' is a data file of the document.", Location(str(document)), hint="Choose another output path; data files are never overwritten.")
 
 
 def write_json(result: DocumentResult, path: Path, blocks_json: Sequence[Mapping[str, Any]] = ()) -> None:

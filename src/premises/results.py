@@ -259,6 +259,8 @@ class BlockResult:
     detail: str = "full"
     guidelines: tuple[tuple[str, Any], ...] = ()
     change_log: tuple[tuple[str, Any], ...] = ()
+    se_data_driven: bool = False
+    """True when ``se: auto`` chose HC3 after looking at the residual spread (a data-driven choice)."""
     """Differences from the block's previous render (``premises.changes``); empty on a first render."""
     analysed_ids: tuple[str, ...] = ()
     """Ids of the analysed rows in file order (with the ledger's removed ids: every row read)."""

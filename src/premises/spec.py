@@ -698,6 +698,24 @@ _YAML_BREAK = re.compile("\r\n|[\r\n\x85\u2028\u2029]")
 """Line breaks as YAML counts them."""
 
 
+_OTHER_BREAK = re.compile("[\x85\u2028\u2029]")
+"""Characters YAML reads as line breaks but a Markdown document does not."""
+
+
+def _reject_other_breaks(body: str, ctx: _Context) -> None:
+    """Refuse U+0085, U+2028 and U+2029: YAML would break the line there and every
+    later line number would disagree with the document's."""
+    found = _OTHER_BREAK.search(body)
+    if found is not None:
+        line = ctx.fence_line + 1 + len(re.findall("\r\n|\r|\n", body[: found.start()]))
+        raise SpecError(
+            f"The block holds the character U+{ord(found.group()):04X}, which YAML reads as a line "
+            "break but the document does not.",
+            Location(ctx.file, line, ctx.block),
+            "Replace it with a space or an ordinary line break (it often comes from pasted text).",
+        )
+
+
 def _reject_tabs(body: str, ctx: _Context) -> None:
     for number, text in enumerate(_YAML_BREAK.split(body)):
         indent = text[: len(text) - len(text.lstrip(" \t"))]
@@ -779,6 +797,7 @@ def _load_yaml(body: str, ctx: _Context) -> tuple[dict[str, Any], tuple[tuple[st
             Location(ctx.file, ctx.fence_line, ctx.block),
             "Split it into several blocks, or shorten long titles and reasons.",
         )
+    _reject_other_breaks(body, ctx)
     _reject_tabs(body, ctx)
     lines: dict[str, int] = {}
     try:

@@ -20,7 +20,13 @@ from premises.formula import Design
 from premises.results import Coefficient, SensitivityRow
 from premises.spec import ALTERNATIVES
 
-__all__ = ["BoxCoxProfile", "ROUNDED_LAMBDAS", "boxcox_profile", "fit_alternatives", "profile_loglik"]
+__all__ = [
+    "ROUNDED_LAMBDAS",
+    "BoxCoxProfile",
+    "boxcox_profile",
+    "fit_alternatives",
+    "profile_loglik",
+]
 
 ROUNDED_LAMBDAS = (-1.0, -0.5, 0.0, 0.5, 1.0)
 """Interpretable powers a Box-Cox lambda is rounded to (Box & Cox 1964; common practice)."""
@@ -40,7 +46,9 @@ class BoxCoxProfile:
     rounded_in_interval: bool
 
 
-def profile_loglik(y: np.ndarray, x: np.ndarray, lam: float, weights: np.ndarray | None = None) -> float:
+def profile_loglik(
+    y: np.ndarray, x: np.ndarray, lam: float, weights: np.ndarray | None = None
+) -> float:
     """Profile log-likelihood of a Box-Cox lambda for the regression of y^(lambda) on ``x``.
 
     -n/2 log(RSS(lambda)/n) + (lambda - 1) sum(log y), constants dropped
@@ -58,8 +66,9 @@ def profile_loglik(y: np.ndarray, x: np.ndarray, lam: float, weights: np.ndarray
     return float(-0.5 * n * np.log(rss / n) + (lam - 1.0) * np.sum(np.log(y)))
 
 
-def boxcox_profile(y: np.ndarray, x: np.ndarray, weights: np.ndarray | None = None,
-                   level: float = 0.95) -> BoxCoxProfile:
+def boxcox_profile(
+    y: np.ndarray, x: np.ndarray, weights: np.ndarray | None = None, level: float = 0.95
+) -> BoxCoxProfile:
     """Maximum-likelihood lambda, its likelihood-ratio interval, and the rounded value.
 
     The interval holds the lambdas whose log-likelihood is within
@@ -67,6 +76,7 @@ def boxcox_profile(y: np.ndarray, x: np.ndarray, weights: np.ndarray | None = No
     the value of :data:`ROUNDED_LAMBDAS` inside the interval closest to the
     estimate, else the closest overall.
     """
+
     def loglik(lam: float) -> float:
         return profile_loglik(y, x, lam, weights)
 
@@ -74,8 +84,9 @@ def boxcox_profile(y: np.ndarray, x: np.ndarray, weights: np.ndarray | None = No
     values = np.array([loglik(v) for v in grid])
     best = int(np.argmax(values))
     low, high = grid[max(best - 1, 0)], grid[min(best + 1, grid.size - 1)]
-    found = optimize.minimize_scalar(lambda v: -loglik(v), bounds=(low, high), method="bounded",
-                                     options={"xatol": 1e-6})
+    found = optimize.minimize_scalar(
+        lambda v: -loglik(v), bounds=(low, high), method="bounded", options={"xatol": 1e-6}
+    )
     lam = float(found.x)
     peak = -float(found.fun)
     drop = float(stats.chi2.ppf(level, 1)) / 2.0
@@ -121,10 +132,18 @@ def _coefficients(ctx: CheckContext, fit: FitResult, kind: str) -> tuple[Coeffic
     for j, term in enumerate(fit.design.column_names):
         est = float(fit.params[j])
         t = est / se[j] if se[j] > 0 else float("nan")
-        out.append(Coefficient(term=term, estimate=est, se=float(classical[j]),
-                               se_robust=None if robust is None else float(robust[j]),
-                               ci_low=est - crit * float(se[j]), ci_high=est + crit * float(se[j]),
-                               p=float(2 * stats.t.sf(abs(t), df)), statistic=float(t)))
+        out.append(
+            Coefficient(
+                term=term,
+                estimate=est,
+                se=float(classical[j]),
+                se_robust=None if robust is None else float(robust[j]),
+                ci_low=est - crit * float(se[j]),
+                ci_high=est + crit * float(se[j]),
+                p=float(2 * stats.t.sf(abs(t), df)),
+                statistic=float(t),
+            )
+        )
     return tuple(out)
 
 
@@ -142,22 +161,46 @@ def _changed(reported: tuple[Coefficient, ...], other: tuple[Coefficient, ...]) 
     return tuple(out)
 
 
-def _row(ctx: CheckContext, label: str, description: str, design: Design, kind: str,
-         data_driven: bool = False) -> SensitivityRow:
+def _row(
+    ctx: CheckContext,
+    label: str,
+    description: str,
+    design: Design,
+    kind: str,
+    data_driven: bool = False,
+) -> SensitivityRow:
     try:
         fit = fit_model(design, ctx.fit.weights)
         coefs = _coefficients(ctx, fit, kind)
     except PremisesError as exc:
-        return SensitivityRow(label=label, description=f"{description} (could not be fitted: {exc.problem})",
-                              n=0, coefficients=(), data_driven=data_driven)
+        return SensitivityRow(
+            label=label,
+            description=f"{description} (could not be fitted: {exc.problem})",
+            n=0,
+            coefficients=(),
+            data_driven=data_driven,
+        )
     reported = _coefficients(ctx, ctx.fit, kind)
-    return SensitivityRow(label=label, description=description, n=fit.n, coefficients=coefs,
-                          changed=_changed(reported, coefs), data_driven=data_driven)
+    return SensitivityRow(
+        label=label,
+        description=description,
+        n=fit.n,
+        coefficients=coefs,
+        changed=_changed(reported, coefs),
+        data_driven=data_driven,
+    )
 
 
-def _not_fitted(label: str, description: str, why: str, data_driven: bool = False) -> SensitivityRow:
-    return SensitivityRow(label=label, description=f"{description} (not fitted: {why})", n=0,
-                          coefficients=(), data_driven=data_driven)
+def _not_fitted(
+    label: str, description: str, why: str, data_driven: bool = False
+) -> SensitivityRow:
+    return SensitivityRow(
+        label=label,
+        description=f"{description} (not fitted: {why})",
+        n=0,
+        coefficients=(),
+        data_driven=data_driven,
+    )
 
 
 def _rank_row(ctx: CheckContext, kind: str) -> SensitivityRow:
@@ -168,16 +211,26 @@ def _rank_row(ctx: CheckContext, kind: str) -> SensitivityRow:
             x[:, j] = stats.rankdata(x[:, j])
     y = stats.rankdata(design.y)
     ranked = replace(design, y=y, X=x, outcome=f"rank({design.outcome})")
-    return _row(ctx, "ranks", "outcome and numeric predictors replaced by their ranks (rank regression, "
-                "Iman & Conover 1979); coefficients are in rank units, so compare signs and conclusions",
-                ranked, kind)
+    return _row(
+        ctx,
+        "ranks",
+        "outcome and numeric predictors replaced by their ranks (rank regression, "
+        "Iman & Conover 1979); coefficients are in rank units, so compare signs and conclusions",
+        ranked,
+        kind,
+    )
 
 
 def _log_row(ctx: CheckContext, kind: str) -> SensitivityRow:
     design = ctx.fit.design
-    label, description = "log outcome", "natural log of the outcome; 100 (exp(b) - 1) is the percent change"
+    label, description = (
+        "log outcome",
+        "natural log of the outcome; 100 (exp(b) - 1) is the percent change",
+    )
     if np.any(design.y <= 0):
-        return _not_fitted(label, description, f"{int(np.sum(design.y <= 0))} outcome values are zero or negative")
+        return _not_fitted(
+            label, description, f"{int(np.sum(design.y <= 0))} outcome values are zero or negative"
+        )
     logged = replace(design, y=np.log(design.y), outcome=f"log({design.outcome})")
     return _row(ctx, label, description, logged, kind)
 
@@ -186,17 +239,25 @@ def _boxcox_row(ctx: CheckContext, kind: str) -> SensitivityRow:
     design = ctx.fit.design
     label = "Box-Cox outcome"
     if np.any(design.y <= 0):
-        return _not_fitted(label, "Box-Cox transformation of the outcome",
-                           "the outcome has values that are zero or negative", data_driven=True)
+        return _not_fitted(
+            label,
+            "Box-Cox transformation of the outcome",
+            "the outcome has values that are zero or negative",
+            data_driven=True,
+        )
     prof = boxcox_profile(design.y, design.X, ctx.fit.weights)
     power = "log" if prof.rounded == 0 else f"power {prof.rounded:g}"
-    description = (f"Box-Cox transformation of the outcome chosen from these data (Box & Cox 1964): lambda "
-                   f"{prof.lam:.2f}, 95% interval {prof.ci_low:.2f} to {prof.ci_high:.2f}, rounded to "
-                   f"{prof.rounded:g} ({power})"
-                   + ("" if prof.rounded_in_interval else ", a value outside the interval")
-                   + "; inference after choosing lambda ignores that choice")
+    description = (
+        f"Box-Cox transformation of the outcome chosen from these data (Box & Cox 1964): lambda "
+        f"{prof.lam:.2f}, 95% interval {prof.ci_low:.2f} to {prof.ci_high:.2f}, rounded to "
+        f"{prof.rounded:g} ({power})"
+        + ("" if prof.rounded_in_interval else ", a value outside the interval")
+        + "; inference after choosing lambda ignores that choice"
+    )
     y = np.log(design.y) if prof.rounded == 0 else special.boxcox(design.y, prof.rounded)
-    transformed = replace(design, y=np.asarray(y, dtype=float), outcome=f"boxcox({design.outcome}, {prof.rounded:g})")
+    transformed = replace(
+        design, y=np.asarray(y, dtype=float), outcome=f"boxcox({design.outcome}, {prof.rounded:g})"
+    )
     return _row(ctx, label, description, transformed, kind, data_driven=True)
 
 
@@ -223,8 +284,11 @@ def fit_alternatives(ctx: CheckContext, names: tuple[str, ...]) -> tuple[Sensiti
     """
     unknown = [n for n in names if n not in _BUILDERS]
     if unknown:
-        raise SpecError(f"Unknown alternative analysis '{unknown[0]}'.", ctx.spec.locate("alternatives"),
-                        f"Use one of: {', '.join(ALTERNATIVES)}.")
+        raise SpecError(
+            f"Unknown alternative analysis '{unknown[0]}'.",
+            ctx.spec.locate("alternatives"),
+            f"Use one of: {', '.join(ALTERNATIVES)}.",
+        )
     if not names:
         return ()
     kind = _se_kind(ctx)

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 
 from premises.checks.base import CheckContext
-from premises.results import Finding, Statistic, ThresholdUse
+from premises.results import Finding, Statistic, ThresholdUse, Verdict
 
 __all__ = ["VIOLATED_FACTOR", "check_collinearity", "generalised_vif", "vif_from_correlation"]
 
@@ -141,10 +141,8 @@ def check_collinearity(ctx: CheckContext) -> Finding:
     condition = float(ctx.fit.condition_number)
     high = [t for t, v in zip(names, comparable) if v >= limit]
     structural = _structural(ctx, high)
-    if not high:
-        verdict = "holds"
-    elif structural:
-        verdict = "holds"
+    if not high or structural:
+        verdict: Verdict = "holds"
     else:
         verdict = "violated" if largest >= VIOLATED_FACTOR * limit else "concern"
     statistics = [
@@ -165,9 +163,11 @@ def check_collinearity(ctx: CheckContext) -> Finding:
         )
     )
     notes = [
-        "Collinearity widens the confidence intervals of the terms involved only; it does not bias the "
-        "estimates or affect the other terms. Dropping a variable to lower a VIF is not advised: it can "
-        "bias what remains (O'Brien 2007)."
+        (
+            "Collinearity widens the confidence intervals of the terms involved only; it does not bias "
+            "the estimates or affect the other terms. Dropping a variable to lower a VIF is not "
+            "advised: it can bias what remains (O'Brien 2007)."
+        )
     ]
     if structural:
         notes.append(

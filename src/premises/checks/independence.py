@@ -2,13 +2,14 @@
 
 Without an order or groups the check says so and does nothing: the
 Durbin-Watson statistic of rows in file order is "not even uniquely defined"
-for cross-sectional data (NEEDS.md section 2). With an order the measure is
+for cross-sectional data. With an order the measure is
 the lag-1 autocorrelation of the residuals; with groups it is the design
 effect 1 + (m - 1) ICC (Kish 1965).
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -19,7 +20,7 @@ from statsmodels.stats.stattools import durbin_watson
 from premises.checks.base import CheckContext
 from premises.checks.variance import weighted_residuals
 from premises.errors import DataError
-from premises.results import Finding, Statistic, ThresholdUse
+from premises.results import Finding, Statistic, ThresholdUse, Verdict
 
 __all__ = [
     "AUTOCORRELATION_CONCERN",
@@ -75,7 +76,7 @@ def _column(ctx: CheckContext, key: str) -> pd.Series | None:
         raise DataError(
             f"The {key} column '{name}' has {int(values.isna().sum())} missing values among the analysed rows.",
             ctx.spec.locate(key),
-            f"Exclude those rows with a rule such as 'is_missing({name})', or fill the column.",
+            f"Exclude those rows with a rule such as '{name} is missing', or fill the column.",
         )
     return values
 
@@ -90,13 +91,13 @@ def order_values(ctx: CheckContext) -> np.ndarray | None:
     if values is None:
         return None
     if pd.api.types.is_datetime64_any_dtype(values):
-        return values.astype("int64").to_numpy(dtype=float)
+        return np.asarray(values.astype("int64").to_numpy(dtype=float))
     if pd.api.types.is_numeric_dtype(values) and not pd.api.types.is_bool_dtype(values):
-        return values.to_numpy(dtype=float)
+        return np.asarray(values.to_numpy(dtype=float))
     if isinstance(values.dtype, pd.CategoricalDtype) and values.cat.ordered:
-        return values.cat.codes.to_numpy(dtype=float)
+        return np.asarray(values.cat.codes.to_numpy(dtype=float))
     codes, _ = pd.factorize(values.astype(str), sort=True)
-    return codes.astype(float)
+    return np.asarray(codes, dtype=float)
 
 
 def group_values(ctx: CheckContext) -> np.ndarray | None:
@@ -105,7 +106,7 @@ def group_values(ctx: CheckContext) -> np.ndarray | None:
     if values is None:
         return None
     codes, _ = pd.factorize(values, sort=True)
-    return codes.astype(np.intp)
+    return np.asarray(codes, dtype=np.intp)
 
 
 def breusch_godfrey(resid: np.ndarray, x: np.ndarray) -> tuple[float, float]:
@@ -178,44 +179,190 @@ def cluster_summary(resid: np.ndarray, groups: np.ndarray) -> dict[str, float]:
         "size_cv": float(np.std(sizes) / np.mean(sizes)),
         "smallest": float(sizes.min()),
         "largest": float(sizes.max()),
+        "singletons": float(np.sum(sizes == 1)),
     }
 
 
 _RANK = {"holds": 0, "concern": 1, "violated": 2}
 
 
-def _grade(value: float, evidence: bool, concern: float, violated: float) -> str:
+def _grade(value: float, evidence: bool, concern: float, violated: float) -> Verdict:
     if not evidence or not np.isfinite(value) or value < concern:
         return "holds"
     return "violated" if value >= violated else "concern"
 
 
-def _serial_part(ctx: CheckContext, e: np.ndarray, order: np.ndarray) -> dict[str, Any]:
+@dataclass
+class _Part:
+    """What one source of dependence (order or groups) contributes to the finding."""
+
+    verdict: Verdict
+    measure: Statistic
+    description: str
+    consequence: str
+    remedy: str
+    method: str
+    statistics: list[Statistic] = field(default_factory=list)
+    thresholds: list[ThresholdUse] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+    extra: list[tuple[str, Any]] = field(default_factory=list)
+
+
+def _serial_part(ctx: CheckContext, e: np.ndarray, order: np.ndarray) -> _Part:
     idx = np.argsort(order, kind="stable")
-    summary = serial_summary(e[idx])
+    s = serial_summary(e[idx])
     x = ctx.fit.design.X
     if ctx.fit.weights is not None:
         x = x * np.sqrt(np.asarray(ctx.fit.weights, dtype=float))[:, None]
     lm, p = breusch_godfrey(e[idx], x[idx])
+    rho = s["rho"]
     verdict = _grade(
-        abs(summary["rho"]),
-        p < ctx.spec.thresholds.alpha,
-        AUTOCORRELATION_CONCERN,
-        AUTOCORRELATION_VIOLATED,
+        abs(rho), p < ctx.spec.thresholds.alpha, AUTOCORRELATION_CONCERN, AUTOCORRELATION_VIOLATED
+    )
+    # SE understatement for a predictor that is itself strongly autocorrelated (common practice)
+    inflation = float(np.sqrt((1 + abs(rho)) / (1 - abs(rho)))) if abs(rho) < 1 else float("inf")
+    part = _Part(
+        verdict=verdict,
+        measure=Statistic("lag-1 autocorrelation", rho, source="Wooldridge 2019, sect. 12.2"),
+        description=(
+            f"residuals ordered by {ctx.spec.order} have lag-1 autocorrelation {rho:.2f} "
+            f"(Durbin-Watson d = {s['durbin_watson']:.2f}, Breusch-Godfrey p = {p:.3g})"
+        ),
+        consequence=(
+            f"classical standard errors can be up to about {inflation:.2f} times too small for "
+            "predictors that change slowly along the order"
+        ),
+        remedy=(
+            "Use autocorrelation-robust (Newey-West) standard errors or model the dependence "
+            "(lagged terms, autoregressive errors)."
+        ),
+        method=(
+            "the Durbin-Watson statistic and lag-1 autocorrelation of the residuals ordered by "
+            f"{ctx.spec.order}, with a Breusch-Godfrey test"
+        ),
+        statistics=[
+            Statistic("Durbin-Watson d", s["durbin_watson"], source="Durbin & Watson 1950"),
+            Statistic(
+                "lag-1 autocorrelation",
+                rho,
+                source="Wooldridge 2019, sect. 12.2",
+                note=f"t = {s['rho_t']:.2f}",
+            ),
+            Statistic("Breusch-Godfrey LM (lag 1)", lm, p, (1.0,), "Breusch 1978; Godfrey 1978"),
+        ],
+        thresholds=[
+            ThresholdUse(
+                "|autocorrelation| (concern)",
+                f">= {AUTOCORRELATION_CONCERN:g}",
+                AUTOCORRELATION_CONCERN,
+                "common practice in this tool",
+            ),
+            ThresholdUse(
+                "|autocorrelation| (violated)",
+                f">= {AUTOCORRELATION_VIOLATED:g}",
+                AUTOCORRELATION_VIOLATED,
+                "common practice in this tool",
+            ),
+        ],
+        extra=[
+            ("durbin_watson", s["durbin_watson"]),
+            ("autocorrelation", rho),
+            ("order", ctx.spec.order),
+        ],
     )
     ties = int(order.size - np.unique(order).size)
-    return {**summary, "bg_lm": lm, "bg_p": p, "verdict": verdict, "ties": ties}
+    if ties:
+        part.notes.append(
+            f"{ties} rows share an order value with another; ties were kept in file order, "
+            "so the autocorrelation depends on that order."
+        )
+    return part
 
 
-def _cluster_part(ctx: CheckContext, e: np.ndarray, groups: np.ndarray) -> dict[str, Any]:
-    summary = cluster_summary(e, groups)
+def _cluster_part(ctx: CheckContext, e: np.ndarray, groups: np.ndarray) -> _Part | None:
+    c = cluster_summary(e, groups)
+    if c["clusters"] < 2 or c["clusters"] >= e.size:
+        return None
     verdict = _grade(
-        summary["design_effect"],
-        summary["p"] < ctx.spec.thresholds.alpha,
-        DEFF_CONCERN,
-        DEFF_VIOLATED,
+        c["design_effect"], c["p"] < ctx.spec.thresholds.alpha, DEFF_CONCERN, DEFF_VIOLATED
     )
-    return {**summary, "verdict": verdict}
+    few = c["clusters"] < FEW_CLUSTERS
+    unbalanced = c["size_cv"] > UNBALANCED_CV
+    name = ctx.spec.groups
+    part = _Part(
+        verdict=verdict,
+        measure=Statistic("design effect", c["design_effect"], source="Kish 1965"),
+        description=(
+            f"residuals within groups of {name} have an intraclass correlation of {c['icc']:.2f} "
+            f"(design effect {c['design_effect']:.2f} with {c['clusters']:.0f} groups of "
+            f"{c['mean_size']:.1f} rows on average, effective n about {c['effective_n']:.0f}; "
+            f"F test p = {c['p']:.3g})"
+        ),
+        consequence=(
+            f"classical standard errors can be up to about {np.sqrt(c['design_effect']):.2f} times too small"
+        ),
+        remedy=(
+            f"Consider a multilevel (mixed) model with a random intercept for {name}, or "
+            f"cluster-robust standard errors{' (with caution: few groups)' if few else ''}."
+        ),
+        method=f"the intraclass correlation of the residuals within {name} and the design effect",
+        statistics=[
+            Statistic("ICC of residuals", c["icc"], source="one-way ANOVA estimator"),
+            Statistic("F (between groups)", c["f"], c["p"], (c["df1"], c["df2"]), "Fisher 1925"),
+            Statistic("design effect", c["design_effect"], source="Kish 1965"),
+            Statistic("effective n", c["effective_n"], source="Kish 1965"),
+        ],
+        thresholds=[
+            ThresholdUse(
+                "design effect (concern)",
+                f">= {DEFF_CONCERN:g}",
+                DEFF_CONCERN,
+                "common practice in this tool, calibrated by simulation",
+            ),
+            ThresholdUse(
+                "design effect (violated)",
+                f">= {DEFF_VIOLATED:g}",
+                DEFF_VIOLATED,
+                "Muthen & Satorra 1995 (from memory)",
+            ),
+            ThresholdUse(
+                "clusters", f"< {FEW_CLUSTERS}", float(FEW_CLUSTERS), "Cameron & Miller 2015"
+            ),
+        ],
+        extra=[
+            ("icc", c["icc"]),
+            ("design_effect", c["design_effect"]),
+            ("effective_n", c["effective_n"]),
+            ("clusters", c["clusters"]),
+            ("mean_cluster_size", c["mean_size"]),
+            ("few_clusters", few),
+            ("unbalanced_clusters", unbalanced),
+            ("groups", name),
+        ],
+    )
+    if few:
+        part.notes.append(
+            f"Only {c['clusters']:.0f} groups: cluster-robust standard errors are unreliable with fewer "
+            f"than about {FEW_CLUSTERS} (Cameron & Miller 2015); a multilevel model or a wild cluster "
+            "bootstrap is safer."
+        )
+    if c["singletons"]:
+        lone = int(c["singletons"])
+        part.notes.append(
+            f"{lone} group{' has' if lone == 1 else 's have'} a single row; such a group says nothing "
+            "about correlation within groups and enters the cluster-robust standard errors as a "
+            "cluster of its own (allowed, but check the groups column)."
+        )
+    if unbalanced:
+        part.notes.append(
+            f"Group sizes are very unbalanced ({c['smallest']:.0f} to {c['largest']:.0f} rows); the rule "
+            "of about 40 clusters does not hold then (MacKinnon & Webb)."
+        )
+    part.notes.append(
+        "The design effect is the SE inflation for a predictor that is constant within groups; for "
+        "predictors that vary within groups it is smaller."
+    )
+    return part
 
 
 def check_independence(ctx: CheckContext) -> Finding:
@@ -239,183 +386,41 @@ def check_independence(ctx: CheckContext) -> Finding:
             reason="no order or groups declared",
             method="Independence was not assessed: the block declares neither an order nor groups.",
             notes=(
-                "If observations share a site, class, household or person, declare 'groups:'; "
-                "if they follow a time or sequence, declare 'order:' (Hurlbert 1984).",
+                (
+                    "If observations share a site, class, household or person, declare 'groups:'; "
+                    "if they follow a time or sequence, declare 'order:' (Hurlbert 1984)."
+                ),
             ),
             figure=name,
             extra=(("cluster_robust_advised", False),),
         )
     e = weighted_residuals(ctx.fit)
-    statistics: list[Statistic] = []
-    thresholds: list[ThresholdUse] = [
-        ThresholdUse(
-            "alpha", f"{ctx.spec.thresholds.alpha:g}", ctx.spec.thresholds.alpha, "declared"
+    alpha = ctx.spec.thresholds.alpha
+    serial = _serial_part(ctx, e, order) if order is not None else None
+    cluster = _cluster_part(ctx, e, groups) if groups is not None else None
+    parts = [part for part in (serial, cluster) if part is not None]
+    notes = [note for part in parts for note in part.notes]
+    advised = cluster is not None and cluster.verdict != "holds"
+    extra = [item for part in parts for item in part.extra] + [("cluster_robust_advised", advised)]
+    if groups is not None and cluster is None:
+        notes.append(
+            "The groups column puts every row in one group or each row in its own group; clustering "
+            "could not be assessed."
         )
-    ]
-    notes: list[str] = []
-    parts: list[tuple[str, Statistic, str, str, str]] = []
-    extra: list[tuple[str, Any]] = []
-    methods: list[str] = []
-    cluster_advised = False
-    if order is not None:
-        s = _serial_part(ctx, e, order)
-        statistics += [
-            Statistic("Durbin-Watson d", s["durbin_watson"], source="Durbin & Watson 1950"),
-            Statistic(
-                "lag-1 autocorrelation",
-                s["rho"],
-                source="Wooldridge 2019, sect. 12.2",
-                note=f"t = {s['rho_t']:.2f}",
-            ),
-            Statistic(
-                "Breusch-Godfrey LM (lag 1)",
-                s["bg_lm"],
-                s["bg_p"],
-                (1.0,),
-                "Breusch 1978; Godfrey 1978",
-            ),
-        ]
-        thresholds += [
-            ThresholdUse(
-                "|autocorrelation| (concern)",
-                f">= {AUTOCORRELATION_CONCERN:g}",
-                AUTOCORRELATION_CONCERN,
-                "common practice in this tool",
-            ),
-            ThresholdUse(
-                "|autocorrelation| (violated)",
-                f">= {AUTOCORRELATION_VIOLATED:g}",
-                AUTOCORRELATION_VIOLATED,
-                "common practice in this tool",
-            ),
-        ]
-        if s["ties"]:
-            notes.append(
-                f"{s['ties']} rows share an order value with another; ties were kept in file order, "
-                "so the autocorrelation depends on that order."
-            )
-        inflation = (
-            np.sqrt((1 + abs(s["rho"])) / (1 - abs(s["rho"])))
-            if abs(s["rho"]) < 1
-            else float("inf")
-        )
-        parts.append(
-            (
-                s["verdict"],
-                Statistic("lag-1 autocorrelation", s["rho"], source="Wooldridge 2019, sect. 12.2"),
-                f"residuals ordered by {ctx.spec.order} have lag-1 autocorrelation {s['rho']:.2f} "
-                f"(Durbin-Watson d = {s['durbin_watson']:.2f}, Breusch-Godfrey p = {s['bg_p']:.3g})",
-                f"classical standard errors can be up to about {inflation:.2f} times too small for predictors "
-                "that change slowly along the order",
-                "Use autocorrelation-robust (Newey-West) standard errors or model the dependence "
-                "(lagged terms, autoregressive errors).",
-            )
-        )
-        methods.append(
-            f"the Durbin-Watson statistic and lag-1 autocorrelation of the residuals ordered by "
-            f"{ctx.spec.order}, with a Breusch-Godfrey test"
-        )
-        extra += [
-            ("durbin_watson", s["durbin_watson"]),
-            ("autocorrelation", s["rho"]),
-            ("order", ctx.spec.order),
-        ]
-    if groups is not None:
-        c = _cluster_part(ctx, e, groups)
-        if c["clusters"] < 2 or c["clusters"] >= e.size:
-            notes.append(
-                "The groups column puts every row in one group or each row in its own group; "
-                "clustering could not be assessed."
-            )
-        else:
-            statistics += [
-                Statistic("ICC of residuals", c["icc"], source="one-way ANOVA estimator"),
-                Statistic(
-                    "F (between groups)", c["f"], c["p"], (c["df1"], c["df2"]), "Fisher 1925"
-                ),
-                Statistic("design effect", c["design_effect"], source="Kish 1965"),
-                Statistic("effective n", c["effective_n"], source="Kish 1965"),
-            ]
-            thresholds += [
-                ThresholdUse(
-                    "design effect (concern)",
-                    f">= {DEFF_CONCERN:g}",
-                    DEFF_CONCERN,
-                    "common practice in this tool",
-                ),
-                ThresholdUse(
-                    "design effect (violated)",
-                    f">= {DEFF_VIOLATED:g}",
-                    DEFF_VIOLATED,
-                    "Muthen & Satorra 1995 (from memory)",
-                ),
-                ThresholdUse(
-                    "clusters", f"< {FEW_CLUSTERS}", float(FEW_CLUSTERS), "Cameron & Miller 2015"
-                ),
-            ]
-            few = c["clusters"] < FEW_CLUSTERS
-            unbalanced = c["size_cv"] > UNBALANCED_CV
-            if few:
-                notes.append(
-                    f"Only {c['clusters']:.0f} groups: cluster-robust standard errors are unreliable "
-                    f"with fewer than about {FEW_CLUSTERS} (Cameron & Miller 2015); a multilevel "
-                    "model or a wild cluster bootstrap is safer."
-                )
-            if unbalanced:
-                notes.append(
-                    f"Group sizes are very unbalanced ({c['smallest']:.0f} to {c['largest']:.0f} rows); "
-                    "the rule of about 40 clusters does not hold then (MacKinnon & Webb)."
-                )
-            notes.append(
-                "The design effect is the SE inflation for a predictor that is constant within groups; "
-                "for predictors that vary within groups it is smaller."
-            )
-            cluster_advised = c["verdict"] != "holds"
-            parts.append(
-                (
-                    c["verdict"],
-                    Statistic("design effect", c["design_effect"], source="Kish 1965"),
-                    f"residuals within groups of {ctx.spec.groups} have an intraclass correlation of {c['icc']:.2f} (design effect "
-                    f"{c['design_effect']:.2f} with {c['clusters']:.0f} groups of {c['mean_size']:.1f} rows on "
-                    f"average, effective n about {c['effective_n']:.0f}; F test p = {c['p']:.3g})",
-                    f"classical standard errors can be up to about {np.sqrt(c['design_effect']):.2f} times too small",
-                    "Consider a multilevel (mixed) model with a random intercept for "
-                    f"{ctx.spec.groups}, or cluster-robust standard errors"
-                    + (" (with caution: few groups)." if few else "."),
-                )
-            )
-            methods.append(
-                f"the intraclass correlation of the residuals within {ctx.spec.groups} and the "
-                "design effect"
-            )
-            extra += [
-                ("icc", c["icc"]),
-                ("design_effect", c["design_effect"]),
-                ("effective_n", c["effective_n"]),
-                ("clusters", c["clusters"]),
-                ("mean_cluster_size", c["mean_size"]),
-                ("few_clusters", few),
-                ("unbalanced_clusters", unbalanced),
-                ("groups", ctx.spec.groups),
-            ]
-    extra.append(("cluster_robust_advised", cluster_advised))
-    method = "Independence was assessed from " + " and from ".join(methods) + "." if methods else ""
     if not parts:
         return Finding(
             assumption="independence",
             verdict="not-assessed",
             measure=None,
-            statistics=tuple(statistics),
             reason="the groups column does not form usable groups",
-            method=method,
+            method="Independence was not assessed: the declared groups do not form usable groups.",
             notes=tuple(notes),
             figure=name,
             extra=tuple(extra),
         )
-    worst = max(parts, key=lambda part: _RANK[part[0]])
-    verdict = worst[0]
-    if verdict == "holds":
-        summary = "No dependence detected: " + "; ".join(part[2] for part in parts) + "."
+    worst = max(reversed(parts), key=lambda part: _RANK[part.verdict])
+    if worst.verdict == "holds":
+        summary = "No dependence detected: " + "; ".join(part.description for part in parts) + "."
         consequence = "Treating the observations as independent is reasonable."
         remedy = "None needed."
         if e.size < 50:
@@ -423,19 +428,22 @@ def check_independence(ctx: CheckContext) -> Finding:
                 "With fewer than 50 observations these tests have little power (Ruxton et al. 2015)."
             )
     else:
-        summary = "The observations are not independent: " + worst[2] + "."
-        consequence = worst[3][0].upper() + worst[3][1:] + "."
-        remedy = worst[4]
+        summary = "The observations are not independent: " + worst.description + "."
+        consequence = worst.consequence[0].upper() + worst.consequence[1:] + "."
+        remedy = worst.remedy
     return Finding(
         assumption="independence",
-        verdict=verdict,
-        measure=worst[1],  # type: ignore[arg-type]
-        statistics=tuple(statistics),
+        verdict=worst.verdict,
+        measure=worst.measure,
+        statistics=tuple(s for part in parts for s in part.statistics),
         summary=summary,
         consequence=consequence,
         remedy=remedy,
-        thresholds=tuple(thresholds),
-        method=method,
+        thresholds=(ThresholdUse("alpha", f"{alpha:g}", alpha, "declared"),)
+        + tuple(t for part in parts for t in part.thresholds),
+        method="Independence was assessed from "
+        + " and from ".join(part.method for part in parts)
+        + ".",
         notes=tuple(notes),
         figure=name,
         extra=tuple(extra),

@@ -18,7 +18,7 @@ from premises.checks.independence import order_values
 from premises.checks.smoothing import SmoothShare, broken_line_share, default_knots
 from premises.checks.variance import full_rank_columns, weighted_residuals
 from premises.lsq import gram_lstsq
-from premises.results import Finding, Statistic, ThresholdUse
+from premises.results import Finding, Statistic, ThresholdUse, Verdict
 
 __all__ = [
     "HARVEY_COLLIER_MAX_N",
@@ -139,7 +139,7 @@ def predictor_curves(ctx: CheckContext) -> list[tuple[str, np.ndarray]]:
     return out
 
 
-def _grade(share: float, evidence: bool) -> str:
+def _grade(share: float, evidence: bool) -> Verdict:
     if not evidence or share < SHARE_CONCERN:
         return "holds"
     return "violated" if share >= SHARE_VIOLATED else "concern"
@@ -229,10 +229,17 @@ def check_linearity(ctx: CheckContext) -> Finding:
         note=f"largest over: {worst}",
     )
     if verdict == "holds":
-        summary = (
-            f"No systematic curve in the residuals: a smooth explains at most {share_pct:.1%} of "
-            f"their variance (largest against {worst}; RESET p = {reset['p']:.3g})."
-        )
+        if share_pct >= SHARE_CONCERN:
+            summary = (
+                f"A smooth of the residuals against {worst} explains {share_pct:.1%} of their "
+                f"variance, within what chance gives at n = {n} (adjusted p = {adjusted_p:.3g}; "
+                f"RESET p = {reset['p']:.3g})."
+            )
+        else:
+            summary = (
+                f"No systematic curve in the residuals: a smooth explains at most {share_pct:.1%} "
+                f"of their variance (largest against {worst}; RESET p = {reset['p']:.3g})."
+            )
         consequence = "The linear form of the terms describes the mean adequately."
         remedy = "None needed."
         if reset["p"] < alpha:

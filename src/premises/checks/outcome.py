@@ -14,7 +14,7 @@ from premises.checks.base import CheckContext
 from premises.errors import ModelError
 from premises.results import Finding, Statistic, ThresholdUse
 
-__all__ = ["SMALL_COUNT_MEAN", "BOUND_SHARE", "check_outcome", "describe_outcome"]
+__all__ = ["BOUND_SHARE", "SMALL_COUNT_MEAN", "check_outcome", "describe_outcome"]
 
 SMALL_COUNT_MEAN = 10.0
 """Counts with a mean below this are too skewed and discrete for a normal linear
@@ -141,7 +141,8 @@ def check_outcome(ctx: CheckContext) -> Finding:
         )
     if small_count or piled:
         what = (
-            f"non-negative counts with mean {facts['mean']:.3g}" if small_count
+            f"non-negative counts with mean {facts['mean']:.3g}"
+            if small_count
             else f"{pile:.0%} of values at the {at} value"
         )
         return Finding(
@@ -159,9 +160,11 @@ def check_outcome(ctx: CheckContext) -> Finding:
                 "normality checks are likely to be strained."
             ),
             remedy=(
-                "Consider a model for counts (Poisson, negative binomial)" if small_count
+                "Consider a model for counts (Poisson, negative binomial)"
+                if small_count
                 else "Consider a model that respects the bound (tobit, beta, ordinal)"
-            ) + ", or report robust standard errors and interpret with care.",
+            )
+            + ", or report robust standard errors and interpret with care.",
             thresholds=thresholds,
             method=method,
             notes=tuple(notes),

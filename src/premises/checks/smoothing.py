@@ -222,7 +222,9 @@ def broken_line_share(
     inner = np.unique(np.quantile(x, np.linspace(0.0, 1.0, k + 2)[1:-1]))
     inner = inner[(inner > x.min()) & (inner < x.max())]
     if inner.size == 0 or total <= 0.0:
-        return SmoothShare(0.0, 0.0, int(inner.size), float("nan"), (0.0, float(n - n_params)), float("nan"))
+        return SmoothShare(
+            0.0, 0.0, int(inner.size), float("nan"), (0.0, float(n - n_params)), float("nan")
+        )
     centre, spread = float(np.mean(x)), float(np.std(x)) or 1.0
     z, z_knots = (x - centre) / spread, (inner - centre) / spread
     # Filled column by column in column-major order: one (n, k + 2) array, no temporaries.
@@ -244,7 +246,14 @@ def broken_line_share(
     df_between = float(max(int(rank) - 2, 1))
     df_within = float(n - n_params - df_between)
     if df_within < 1:
-        return SmoothShare(0.0, between / total, int(inner.size), float("nan"), (df_between, df_within), float("nan"))
+        return SmoothShare(
+            0.0,
+            between / total,
+            int(inner.size),
+            float("nan"),
+            (df_between, df_within),
+            float("nan"),
+        )
     mean_square_within = within / df_within
     share = (between - df_between * mean_square_within) / total
     if within <= 0.0:
@@ -252,4 +261,6 @@ def broken_line_share(
     else:
         f_stat = (between / df_between) / mean_square_within
         p = float(stats.f.sf(f_stat, df_between, df_within))
-    return SmoothShare(float(share), between / total, int(inner.size), float(f_stat), (df_between, df_within), p)
+    return SmoothShare(
+        float(share), between / total, int(inner.size), float(f_stat), (df_between, df_within), p
+    )

@@ -16,7 +16,7 @@ from scipy import stats
 from premises.checks.base import CheckContext
 from premises.fit import FitResult
 from premises.lsq import gram_lstsq, well_conditioned
-from premises.results import Finding, Statistic, ThresholdUse
+from premises.results import Finding, Statistic, ThresholdUse, Verdict
 
 __all__ = [
     "SPREAD_CONCERN",
@@ -53,7 +53,9 @@ def weighted_residuals(fit: FitResult) -> np.ndarray:
     """Residuals on the scale where the model assumes equal variance: sqrt(w) * e for WLS."""
     if fit.weights is None:
         return np.asarray(fit.resid, dtype=float)
-    return np.sqrt(np.asarray(fit.weights, dtype=float)) * np.asarray(fit.resid, dtype=float)
+    return np.asarray(
+        np.sqrt(np.asarray(fit.weights, dtype=float)) * np.asarray(fit.resid, dtype=float)
+    )
 
 
 def full_rank_columns(z: np.ndarray, tol: float = 1e-9) -> np.ndarray:
@@ -78,7 +80,9 @@ def _with_constant(x: np.ndarray) -> np.ndarray:
     return full_rank_columns(np.hstack([ones, x]))
 
 
-def _het_statistics(resid: np.ndarray, z: np.ndarray) -> tuple[float, float, float, float, float, float]:
+def _het_statistics(
+    resid: np.ndarray, z: np.ndarray
+) -> tuple[float, float, float, float, float, float]:
     """Studentised LM, its p, F, F's p, and the original LM with its p, for e^2 on ``z``.
 
     The auxiliary regression of statsmodels' ``het_breuschpagan`` (Koenker's
@@ -205,7 +209,7 @@ def _factor_terms(ctx: CheckContext) -> list[tuple[str, str]]:
     return out
 
 
-def _grade(ratio: float, evidence: bool) -> str:
+def _grade(ratio: float, evidence: bool) -> Verdict:
     if not evidence or ratio < SPREAD_CONCERN:
         return "holds"
     return "violated" if ratio >= SPREAD_VIOLATED else "concern"
@@ -330,10 +334,16 @@ def check_variance(ctx: CheckContext) -> Finding:
         note="mean absolute residual, larger over smaller group",
     )
     if verdict == "holds":
-        summary = (
-            f"The residual spread is similar across the fitted values (ratio {ratio:.2f} "
-            f"between the {side} and the opposite third; Breusch-Pagan p = {bp['koenker_p']:.3g})."
-        )
+        if measure_value >= SPREAD_CONCERN:
+            summary = (
+                f"The residual spread is {measure_value:.2f} times larger in {where}, within what "
+                f"chance gives at n = {n} (Breusch-Pagan p = {bp['koenker_p']:.3g})."
+            )
+        else:
+            summary = (
+                f"The residual spread is similar across the fitted values (ratio {ratio:.2f} "
+                f"between the {side} and the opposite third; Breusch-Pagan p = {bp['koenker_p']:.3g})."
+            )
         consequence = "Classical standard errors are appropriate as far as variance is concerned."
         remedy = "None needed."
         if n < 50 and bp["koenker_p"] >= alpha:

@@ -7,10 +7,7 @@ canvas, and nothing is registered in a global figure manager.
 
 from __future__ import annotations
 
-import os
-import tempfile
 from collections.abc import Callable, Sequence
-from contextlib import suppress
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TypeVar
 
@@ -100,17 +97,14 @@ def render_to_file(
 
 
 def _write_atomically(fig: Figure, path: Path, fmt: str, dpi: int) -> None:
-    """Save to a temporary file in the target folder, then rename over the target."""
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            fig.savefig(handle, format=fmt, dpi=dpi, metadata=METADATA[fmt])
-        os.chmod(tmp, 0o644)  # mkstemp makes 0600; figures are meant to be served
-        os.replace(tmp, path)
-    except BaseException:
-        with suppress(FileNotFoundError):
-            os.unlink(tmp)
-        raise
+    """Draw into memory, then write through :func:`premises.files.atomic_write_bytes`."""
+    import io
+
+    from premises.files import atomic_write_bytes
+
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format=fmt, dpi=dpi, metadata=METADATA[fmt])
+    atomic_write_bytes(path, buffer.getvalue())
 
 
 # ---------------------------------------------------------------------------- layers

@@ -8,7 +8,7 @@ line shows the shape the model missed, and in which predictor.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -32,7 +32,12 @@ from premises.results import Finding
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
 
-__all__ = ["PartialData", "compute", "describe", "draw", "numeric_terms"]
+__all__ = ["MAX_PARTIAL_FIGURES", "PartialData", "compute", "describe", "draw", "numeric_terms"]
+
+MAX_PARTIAL_FIGURES = 12
+"""Component-plus-residual plots drawn per block at most (the first terms of the
+formula); the last one's caption names the terms left without a plot. A bound on
+the files and the time one block can cost (common practice in this tool)."""
 
 
 @dataclass(frozen=True)
@@ -52,6 +57,8 @@ class PartialData:
     resid_sd: float
     max_bend_sd: float
     """Largest gap between the binned mean and the straight line, in residual SDs."""
+    not_drawn: tuple[str, ...] = ()
+    """Numeric terms beyond ``MAX_PARTIAL_FIGURES`` that get no plot (on the last figure only)."""
 
 
 def numeric_terms(design: Design) -> tuple[tuple[str, int], ...]:
@@ -98,7 +105,8 @@ def compute(
     sd = float(np.sqrt(fit.sigma2)) if fit.sigma2 > 0 else float(np.nanstd(resid))
     names: set[str] = set()
     out: list[PartialData] = []
-    for term, column in numeric_terms(fit.design):
+    terms = numeric_terms(fit.design)
+    for term, column in terms[:MAX_PARTIAL_FIGURES]:
         # A contiguous copy of the column: strided reads are several times slower.
         x = np.ascontiguousarray(fit.design.X[:, column], dtype=float)
         slope = float(fit.params[column])
@@ -123,6 +131,9 @@ def compute(
                 max_bend_sd=bend,
             )
         )
+    skipped = tuple(term for term, _ in terms[MAX_PARTIAL_FIGURES:])
+    if skipped:
+        out[-1] = replace(out[-1], not_drawn=skipped)
     return tuple(out)
 
 
@@ -157,6 +168,16 @@ def draw(data: PartialData, fig: Figure) -> None:
     finish_axes(ax, f"Component plus residual for {data.term}", smoother)
 
 
+def _not_drawn_note(terms: tuple[str, ...]) -> str:
+    if not terms:
+        return ""
+    listed = ", ".join(terms[:5]) + (f" and {len(terms) - 5} more" if len(terms) > 5 else "")
+    return (
+        f"A block draws at most {MAX_PARTIAL_FIGURES} of these plots; {len(terms)} further "
+        f"numeric term{'s' if len(terms) != 1 else ''} ({listed}) {'have' if len(terms) != 1 else 'has'} none."
+    )
+
+
 def describe(data: PartialData, finding: Finding) -> tuple[str, str]:
     """Caption and alt text."""
     caption = join_caption(
@@ -166,6 +187,7 @@ def describe(data: PartialData, finding: Finding) -> tuple[str, str]:
         f"shows the shape the model misses in {data.term}.",
         density_note(data.cloud),
         verdict_sentence(finding),
+        _not_drawn_note(data.not_drawn),
     )
     shape = cloud_words(data.cloud, "partial residual", data.term)
     if data.smooth.empty:
