@@ -553,11 +553,6 @@ def test_hostile_rule_is_rejected_before_the_data_is_read(tmp_path: Path, monkey
     assert not (project / "hostile.premises.md").exists() and not (project / "hostile.json").exists()
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="with the result store on, staleness.key_parts hashes the data file (file_sha256) before "
-    "any rule is parsed; rules should be checked before the store is consulted",
-)
 def test_hostile_rule_is_rejected_before_the_data_is_hashed_for_the_store(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     project = copy_example(tmp_path / "project")
     pwned = tmp_path / "pwned"
@@ -622,7 +617,6 @@ def test_missing_column_message_lists_each_column_once(tmp_path: Path) -> None:
     assert len(listed) == len(set(listed)), err
 
 
-@pytest.mark.xfail(strict=True, reason="a block whose YAML does not parse is named by line only, not by its id")
 def test_yaml_error_names_the_block(tmp_path: Path) -> None:
     project = copy_example(tmp_path / "project")
     document = edit_report(project, "se: auto", "se: [auto", name="broken.qmd")

@@ -26,13 +26,17 @@ ALLOWED: dict[str, tuple[str, ...]] = {
     "premises._version": (),
     "premises.files": (),
     "premises.config": FOUNDATION,
-    "premises.spec": FOUNDATION + ("premises.config",),
+    "premises.thresholds": FOUNDATION,
+    "premises.keys": FOUNDATION + ("premises.thresholds",),
+    "premises.source": FOUNDATION + ("premises.keys",),
+    "premises.validation": FOUNDATION + ("premises.keys", "premises.source", "premises.thresholds"),
+    "premises.spec": FOUNDATION + ("premises.config", "premises.keys", "premises.source", "premises.thresholds", "premises.validation"),
     "premises.results": FOUNDATION,
     "premises.documents": FOUNDATION + ("premises.documents",),
-    "premises.rules": FOUNDATION + VALUES,
+    "premises.rules": FOUNDATION + VALUES + ("premises.rules",),
     "premises.data": FOUNDATION + VALUES,
     "premises.ledger": FOUNDATION + VALUES + ("premises.rules", "premises.data", "premises.formula"),
-    "premises.formula": FOUNDATION + VALUES,
+    "premises.formula": FOUNDATION + VALUES + ("premises.formula",),
     "premises.lsq": FOUNDATION + VALUES + ("premises.formula",),
     "premises.influence": FOUNDATION + VALUES + ENGINES_FIT,
     "premises.fit": FOUNDATION + VALUES + ENGINES_FIT,
@@ -103,6 +107,12 @@ def test_package_import_is_light() -> None:
 def test_render_and_documents_do_not_import_statistics() -> None:
     loaded = _loaded_after("import premises.render, premises.documents.markdown")
     assert not HEAVY & loaded
+
+
+def test_parsing_a_rule_loads_no_data_library() -> None:
+    # a hostile rule must be refused before numpy or pandas (or any data) is touched
+    loaded = _loaded_after('import premises.rules; premises.rules.parse_rule("x > 1")')
+    assert not {"numpy", "pandas"} & loaded
 
 
 def test_checks_and_fit_do_not_import_drawing_or_templates() -> None:

@@ -174,6 +174,24 @@ class ScaledQR:
             d_resid += unit * (g[0] - uf)
         return d_theta, d_resid
 
+    def residualise(self, v: np.ndarray) -> np.ndarray:
+        """``v`` minus its projection on the column space of the (sqrt-weighted) design, (I - H) v.
+
+        ``v`` is (n,) or (n, m), on the weighted scale. Projected twice
+        ("twice is enough", Parlett 1980, §6.9): a vector close to the column
+        space keeps its small remainder accurately. O(n k m), nothing n x n.
+        """
+        out = np.array(v, dtype=float)
+        columns = out.reshape(self.n, -1)
+        unit = self._unit() if self.intercept_index is not None else None
+        for j in range(columns.shape[1]):
+            for _ in range(2):
+                column = columns[:, j]
+                column -= self.q @ (self.q.T @ column)
+                if unit is not None:
+                    column -= unit * float(unit @ column)
+        return out
+
     def spans_constant(self) -> bool:
         """Whether the constant lies in the column space: an intercept column, or implicitly.
 

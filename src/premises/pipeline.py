@@ -309,7 +309,7 @@ def render_file(
     text = _read_document(path)
     # Nothing is written until every block has rendered: a failing block leaves the
     # previous output and its figures as they were.
-    with tempfile.TemporaryDirectory(prefix="premises-figures-") as staged:
+    with tempfile.TemporaryDirectory(prefix="premises-staged-") as staged:
         rendered = render_text(text, path, output, options, figure_stage=Path(staged))
         _refuse_data_targets(rendered, path, output, json_path)
         try:

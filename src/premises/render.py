@@ -32,7 +32,7 @@ from typing import Any
 import jinja2
 
 from premises._version import FORMAT_VERSION, __version__
-from premises.errors import RenderError
+from premises.errors import RenderError, SpecError
 from premises.guidelines import GUIDELINE_NAMES, GuidelineRow, map_guidelines
 from premises.numbers import FILTERS, LogEffect, decimals_for_se, log_effect
 
@@ -540,7 +540,11 @@ def build_environment(template_dirs: Sequence[Path | str] = ()) -> jinja2.Enviro
     shipped = jinja2.FileSystemLoader(str(PACKAGE_TEMPLATES))
     loaders: list[jinja2.BaseLoader] = [jinja2.FileSystemLoader([str(d) for d in template_dirs])]
     loaders += [shipped, jinja2.PrefixLoader({"premises": shipped})]
-    env = jinja2.Environment(
+    from jinja2.sandbox import SandboxedEnvironment
+
+    # Sandboxed: a template comes from the project (the block's `templates:` key), and a
+    # plain environment lets `{{ self.__init__.__globals__ ... }}` run any Python.
+    env = SandboxedEnvironment(
         loader=jinja2.ChoiceLoader(loaders),
         undefined=jinja2.StrictUndefined,
         autoescape=False,  # Markdown, not HTML: text is escaped by the `md` filter instead
@@ -676,6 +680,11 @@ def render_section(
         raise RenderError(
             f"No template '{exc.name}' for output kind {to!r}.",
             hint="The shipped templates write Markdown (to='md'); add the template to a template folder.",
+        ) from exc
+    except jinja2.exceptions.SecurityError as exc:
+        raise SpecError(
+            f"Template '{name}' (or one it includes) reaches for Python internals: {str(exc).rstrip('.')}.",
+            hint="Templates may use the result's fields, filters and loops only; remove that expression.",
         ) from exc
     except jinja2.UndefinedError as exc:
         raise RenderError(

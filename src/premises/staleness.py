@@ -33,6 +33,7 @@ from premises.cache import (
 )
 from premises.errors import DataError, DriftError, SpecError
 from premises.files import atomic_write_bytes
+from premises.rules import parse_rule
 from premises.spec import BlockSpec, canonical_spec
 
 if TYPE_CHECKING:
@@ -205,6 +206,13 @@ def _record_options(job: BlockJob, options: RenderOptions) -> dict[str, Any]:
     }
 
 
+def _check_rules(spec: BlockSpec) -> None:
+    """Parse every exclusion rule, so a hostile rule is refused before the data file is even hashed."""
+    for rule in spec.exclude:
+        if rule.when is not None:
+            parse_rule(rule.when, location=spec.locate(rule.key + ".when"))
+
+
 def render_block(job: BlockJob, options: RenderOptions, store: BlockCache | None, versions: tuple[tuple[str, str], ...] | None = None) -> tuple[dict[str, Any], str]:
     """Render one block through the store: its result JSON and its section.
 
@@ -225,6 +233,7 @@ def render_block(job: BlockJob, options: RenderOptions, store: BlockCache | None
     DriftError
         When a ``pin: true`` rule matches other rows than at the last render.
     """
+    _check_rules(job.spec)
     parts = _lookup_parts(job, options, versions or library_versions()) if store is not None else None
     if store is None or parts is None:
         block_json, section, figures = _analyse(job, options)

@@ -17,6 +17,7 @@ from premises.checks.base import CheckContext
 from premises.checks.independence import order_values
 from premises.checks.smoothing import SmoothShare, broken_line_share, default_knots
 from premises.checks.variance import full_rank_columns, weighted_residuals
+from premises.fit import FitResult
 from premises.lsq import gram_lstsq
 from premises.results import Finding, Statistic, ThresholdUse, Verdict
 
@@ -27,6 +28,7 @@ __all__ = [
     "check_linearity",
     "harvey_collier",
     "predictor_curves",
+    "reset_from_fit",
     "reset_test",
 ]
 
@@ -72,6 +74,50 @@ def reset_test(
     if q < 1 or df2 < 1 or rss1 <= 0.0:
         return {"f": float("nan"), "p": float("nan"), "df1": float(q), "df2": float(df2)}
     f = ((rss0 - rss1) / q) / (rss1 / df2)
+    return {"f": float(f), "p": float(stats.f.sf(f, q, df2)), "df1": float(q), "df2": float(df2)}
+
+
+def reset_from_fit(fit: FitResult, powers: int = 3) -> dict[str, float]:
+    """:func:`reset_test` for a fitted model, from its factorisation (same statistic, O(n p)).
+
+    By Frisch-Waugh, the residual sum of squares with the powers of the fitted
+    values added is the fit's own, less what those powers explain of its
+    residuals once the design is projected out of them (premises.lsq's
+    ``residualise``). No (n, p + 2) design is formed or factorised; powers that
+    the design already spans (a relative remainder below 1e-9, as
+    ``full_rank_columns`` decides) are dropped. Falls back to
+    :func:`reset_test` when the fit carries no factorisation.
+    """
+    from scipy.linalg import qr
+
+    design = fit.design
+    factor = fit.factor
+    if factor is None:
+        return reset_test(design.y, design.X, fit.fitted, fit.weights, powers)
+    n, p = design.n, design.p
+    root_w = _root_weights(fit.weights, n)
+    scale = float(np.max(np.abs(fit.fitted))) or 1.0
+    extra = np.column_stack([(fit.fitted / scale) ** k for k in range(2, powers + 1)]) * root_w[:, None]
+    lengths = np.sqrt(np.einsum("ij,ij->j", extra, extra))
+    lengths[lengths == 0.0] = 1.0
+    remainder = factor.residualise(extra) / lengths
+    r, pivots = qr(remainder, mode="r", pivoting=True)
+    diag = np.abs(np.diag(r))
+    keep = np.sort(pivots[: int(np.sum(diag > 1e-9))]) if diag.size else np.empty(0, dtype=np.intp)
+    q = int(keep.size)
+    df2 = n - p - q
+    rss0 = float(fit.ss_resid)
+    if q < 1 or df2 < 1:
+        return {"f": float("nan"), "p": float("nan"), "df1": float(q), "df2": float(df2)}
+    kept = remainder[:, keep]
+    e = fit.weighted_resid
+    # What the remainders explain of the residuals: e'F (F'F)^-1 F'e, a q x q solve.
+    cross = kept.T @ e
+    explained = float(cross @ np.linalg.solve(kept.T @ kept, cross))
+    rss1 = rss0 - explained
+    if rss1 <= 0.0:
+        return {"f": float("nan"), "p": float("nan"), "df1": float(q), "df2": float(df2)}
+    f = (explained / q) / (rss1 / df2)
     return {"f": float(f), "p": float(stats.f.sf(f, q, df2)), "df1": float(q), "df2": float(df2)}
 
 
@@ -184,7 +230,7 @@ def check_linearity(ctx: CheckContext) -> Finding:
     worst = max(shares, key=lambda label: shares[label].share)
     top = shares[worst]
     adjusted_p = min(1.0, top.p * len(shares)) if np.isfinite(top.p) else float("nan")
-    reset = reset_test(design.y, design.X, fit.fitted, fit.weights)
+    reset = reset_from_fit(fit)
     statistics = [
         Statistic(
             f"smooth of residuals against {worst}",

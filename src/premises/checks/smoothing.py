@@ -7,10 +7,11 @@ fit, so the same code serves 50 and 10^6 rows. Binned means with their
 standard-error band are drawn in the figures; the share of residual variance
 a smooth explains, adjusted for its degrees of freedom so that noise gives
 about 0, is the linearity measure. The broken line is the measure's default:
-a step function of bin means loses much of a smooth curve (simulation in
-benchmarks/detection.py: with the same false-alarm rate it detected a
-quadratic term explaining 11% of the residual variance at n = 200 in under
-80% of data sets, the broken line in over 90%).
+a step function of bin means loses much of a smooth curve. In simulation
+(benchmarks/detection.py, scenario "curvature", n = 200) the broken line
+through 3 knots found a quadratic term explaining 11% of the residual variance
+in about 92% of samples, binned means over 8 bins in about 79%, at false-alarm
+rates of about 4% and 2% (share >= 0.04 with a significant F test).
 """
 
 from __future__ import annotations
@@ -62,8 +63,9 @@ class SmoothShare:
     share: float
     """Adjusted share (about 0 for noise; may be slightly negative)."""
     raw_share: float
-    """Unadjusted between-bin sum of squares over the total."""
+    """Unadjusted: the smooth's sum of squares over the total."""
     bins: int
+    """Bins of the binned smooth, or interior knots of the broken line."""
     f_statistic: float
     df: tuple[float, float]
     p: float
