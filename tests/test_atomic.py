@@ -41,7 +41,7 @@ ALLOWED = {
     # Figures are drawn into memory, then written by atomic_write_bytes.
     ("figures/layers.py", "fig.savefig(buffer, format=fmt, dpi=dpi, metadata=METADATA[fmt])"),
     # A Parquet table is built in memory, then written by atomic_write_bytes.
-    ("staleness.py", "frame.to_parquet(buffer, index=False)"),
+    ("exports.py", "frame.to_parquet(buffer, index=False)"),
     # A store entry is written into a private temporary folder and published by one
     # rename; a reader checks every file against the manifest, so a torn entry is a miss.
     ("cache.py", "target.write_bytes(data)"),

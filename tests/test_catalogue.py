@@ -39,6 +39,8 @@ Case fields (unknown fields are an error, so a typo cannot weaken a case)::
     root_skip reason to skip when running as root (file permissions)
     expand    long text for a block: {name: [text, times]} replaces ``{name}``
               in ``block`` with ``text`` repeated ``times`` times
+    check     false when ``premises check`` (no fitting, no output) cannot see the
+              problem; otherwise check must give the render's message (or succeed)
 """
 
 from __future__ import annotations
@@ -63,7 +65,7 @@ FENCE_LINE = 5
 WRAPPER = "# A case\n\nSome text before the block.\n\n```premises\n{block}```\n\nSome text after it.\n"
 FIELDS = {
     "title", "block", "document", "document_bytes", "files", "outside", "links", "args",
-    "expect", "fix", "line", "block_id", "key", "succeed", "output", "root_skip", "expand",
+    "expect", "fix", "line", "block_id", "key", "succeed", "output", "root_skip", "expand", "check",
 }
 
 
@@ -226,7 +228,7 @@ def build_case(case: Case, root: Path) -> tuple[Path, Path, Path, list[str]]:
     """Write the case's project; return (project, outside folder, document, extra arguments)."""
     raw = case.raw
     project, outside = root / "project", root / "outside"
-    project.mkdir()
+    project.mkdir(parents=True)
     outside.mkdir()
     places = {"project": project, "outside": outside}
     files = {"d.csv": {"generate": "standard"}, **(raw.get("files") or {})}
@@ -268,6 +270,7 @@ def checksums(*folders: Path) -> dict[str, str]:
 
 
 def run_case(case: Case, root: Path, capsys: pytest.CaptureFixture[str]) -> Run:
+    root.mkdir(parents=True, exist_ok=True)
     project, outside, document, args = build_case(case, root)
     output = root / "out" / "doc.premises.md"
     before = checksums(project, outside)
@@ -335,6 +338,40 @@ def _check_failure(case: Case, run: Run) -> None:
     assert not run.output.exists(), "an output was written"
     assert not run.figures.exists(), "a figures folder was written"
     assert not run.output.parent.exists()
+
+
+def test_the_documented_limits_are_the_ones_in_force() -> None:
+    """docs/limits.md quotes each limit with the constant that sets it; they must agree."""
+    import importlib
+
+    table = (Path(__file__).parents[1] / "docs" / "limits.md").read_text(encoding="utf-8")
+    rows = re.findall(
+        r"^\| [^|]+ \| ([0-9,.]+)(?: (GiB|characters|levels))? \| `(?:--[a-z-]+` \(`)?premises\.([a-z.]+)\.([A-Z_]+)`",
+        table,
+        re.M,
+    )
+    assert len(rows) == 11
+    for number, unit, module, name in rows:
+        value = getattr(importlib.import_module(f"premises.{module}"), name)
+        expected = float(number.replace(",", "")) * (1024**3 if unit == "GiB" else 1)
+        assert value == expected, f"{module}.{name} is {value}, docs/limits.md says {number} {unit}"
+
+
+CHECKED = [c for c in CASES if c.raw.get("check", True)]
+
+
+@pytest.mark.parametrize("case", CHECKED, ids=[c.test_id for c in CHECKED])
+def test_check_finds_what_render_finds(case: Case, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """``premises check`` validates without fitting: the same message as the render, or success."""
+    _skip_if_root(case)
+    run = run_case(case, tmp_path / "render", capsys)
+    project, _, document, args = build_case(case, tmp_path / "check")
+    options = [a for i, a in enumerate(args) if a != "-o" and (i == 0 or args[i - 1] != "-o")]
+    code = main(["check", str(document), *options])
+    err = capsys.readouterr().err
+    assert code == run.code, err
+    rendered_message = run.err.replace(str(tmp_path / "render"), str(tmp_path / "check"))
+    assert err == rendered_message
 
 
 def test_every_fixture_file_is_a_theme() -> None:

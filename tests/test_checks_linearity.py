@@ -63,6 +63,22 @@ def test_reset_matches_statsmodels_linear_reset() -> None:
     assert (ours["df1"], ours["df2"]) == (2, 150 - 5)
 
 
+def test_the_check_reports_the_same_reset_as_statsmodels() -> None:
+    import statsmodels.api as sm
+    from statsmodels.stats.diagnostic import linear_reset
+
+    rng = np.random.default_rng(9)
+    frame = _curved(300, 0.2, 9)
+    frame["g"] = rng.choice(["a", "b", "c"], size=300)
+    ctx = make_context(frame, "y ~ x1 + x2 + C(g)")
+    finding = check_linearity(ctx)
+    reset = next(s for s in finding.statistics if s.name.startswith("RESET"))
+    # Ramsey (1969) via statsmodels linear_reset on the same design (the check's own route differs)
+    reference = linear_reset(sm.OLS(ctx.fit.design.y, ctx.fit.design.X).fit(), power=3, use_f=True)
+    assert reset.value == pytest.approx(float(reference.fvalue), rel=1e-7)
+    assert reset.p == pytest.approx(float(reference.pvalue), rel=1e-6)
+
+
 def test_harvey_collier_matches_statsmodels_when_it_is_defined() -> None:
     import statsmodels.api as sm
     from statsmodels.stats.diagnostic import linear_harvey_collier

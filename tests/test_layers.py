@@ -44,11 +44,13 @@ ALLOWED: dict[str, tuple[str, ...]] = {
     "premises.figures": FOUNDATION + VALUES + ENGINES_FIT + ("premises.checks", "premises.figures"),
     "premises.numbers": FOUNDATION,
     "premises.guidelines": FOUNDATION + VALUES,
-    "premises.render": FOUNDATION + VALUES + ("premises.numbers", "premises.guidelines"),
+    "premises.markup": FOUNDATION,
+    "premises.section": FOUNDATION + VALUES + ("premises.numbers", "premises.guidelines", "premises.markup"),
+    "premises.render": FOUNDATION + VALUES + ("premises.numbers", "premises.guidelines", "premises.markup", "premises.section"),
     "premises.cache": FOUNDATION + VALUES,
     "premises.changes": FOUNDATION + VALUES,
 }
-TOP = ("premises.analysis", "premises.pipeline", "premises.notebooks", "premises.quarto", "premises.staleness", "premises.cli", "premises.__main__", "premises")
+TOP = ("premises.analysis", "premises.exports", "premises.pipeline", "premises.notebooks", "premises.quarto", "premises.staleness", "premises.cli", "premises.__main__", "premises")
 
 
 def _module_name(path: Path) -> str:

@@ -285,7 +285,7 @@ def _add_ledger(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-a
 
 
 def _run_ledger(args: argparse.Namespace) -> int:
-    from premises.staleness import diagnostics_rows, ledger_rows, write_table
+    from premises.exports import diagnostics_rows, ledger_rows, write_table
 
     if args.csv_path is None and args.diagnostics is None:
         print("premises ledger: give --csv OUT and/or --diagnostics OUT.", file=sys.stderr)

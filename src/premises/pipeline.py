@@ -353,15 +353,26 @@ def write_json(result: DocumentResult, path: Path, blocks_json: Sequence[Mapping
 
 
 def check_file(path: Path, options: RenderOptions | None = None) -> list[BlockSpec]:
-    """Validate every block and its data (columns, rules, formula) without fitting."""
+    """Validate every block and its data without fitting.
+
+    Columns, rules, formula and templates; then the ledger runs (exclusions and
+    their guards, missing values, transforms) and the formula is evaluated on the
+    rows that remain, so a rule on a missing column or a log of zero is found here
+    rather than at render time.
+    """
     from premises.analysis import AnalysisOptions, prepare_block
+    from premises.formula import build_design, formula_transforms
+    from premises.ledger import apply_ledger
 
     options = options or RenderOptions()
     text = _read_document(path)
     _, specs = parse_document(text, str(path), document_dir=path.parent, cli_settings=options.cli_settings)
     analysis = AnalysisOptions(allow_outside_data=options.allow_outside_data, max_data_bytes=options.max_data_bytes)
     for spec in specs:
-        prepare_block(spec, path.parent, analysis)
+        _template_dirs(spec, path.parent, options)
+        prepared = prepare_block(spec, path.parent, analysis)
+        outcome = apply_ledger(spec, prepared.table.frame, prepared.ids, prepared.formula_columns, formula_transforms(spec.model))
+        build_design(spec.model, outcome.frame, location=spec.locate("model"))
     return specs
 
 

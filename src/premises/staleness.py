@@ -1,4 +1,4 @@
-"""Keeping a report current: cached block renders, change logs, status, diff and ledger export.
+"""Keeping a report current: cached block renders, change logs, status and diff.
 
 :func:`render_block` is what :func:`premises.pipeline.render_text` runs for
 each block. It fingerprints the block from its spec, data bytes, templates and
@@ -9,12 +9,12 @@ When the inputs changed since the block's last render, it compares the two
 results (:mod:`premises.changes`), enforces ``pin: true`` guards, and puts the
 change log into the result before the section is rendered.
 
-``premises status``, ``diff`` and ``ledger`` read the same records.
+``premises status``, ``diff`` and ``ledger`` (:mod:`premises.exports`) read
+the same records.
 """
 
 from __future__ import annotations
 
-import math
 from collections.abc import Mapping
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -277,13 +277,15 @@ def _store_quietly(store: BlockCache, key: str, block_json: Mapping[str, Any], s
 
 
 @dataclass(frozen=True)
-class _BlockPlace:
+class BlockPlace:
+    """A block of a document with the options and record of its last render."""
+
     job: BlockJob
     options: RenderOptions
     last: LastRender | None
 
 
-def _places(document: Path, options: RenderOptions, flavor: str | None) -> list[_BlockPlace]:
+def block_places(document: Path, options: RenderOptions, flavor: str | None) -> list[BlockPlace]:
     """Each block as its last render saw it (flavor, detail, templates, output), for status and diff."""
     from premises.pipeline import (
         _figure_dir,
@@ -301,7 +303,7 @@ def _places(document: Path, options: RenderOptions, flavor: str | None) -> list[
     store = open_cache(document, options)
     label = document_label(document)
     root = project_root(document)
-    out: list[_BlockPlace] = []
+    out: list[BlockPlace] = []
     for spec in specs:
         last = store.read_last(label, spec.id) if store is not None else None
         seen = last.options if last is not None else {}
@@ -322,7 +324,7 @@ def _places(document: Path, options: RenderOptions, flavor: str | None) -> list[
         figure_dir = _figure_dir(document, output)
         rel = figure_dir.relative_to(output.parent).as_posix() if figure_dir.is_relative_to(output.parent) else figure_dir.as_posix()
         job = BlockJob(spec, document, output, figure_dir, rel, dirs, template_fingerprint(dirs))
-        out.append(_BlockPlace(job, block_options, last))
+        out.append(BlockPlace(job, block_options, last))
     return out
 
 
@@ -353,7 +355,7 @@ def block_status(document: Path, options: RenderOptions, *, flavor: str | None =
     >>> [s.state for s in block_status(Path("report.qmd"), RenderOptions())]  # doctest: +SKIP
     ['stale']
     """
-    places = _places(document, options, flavor)
+    places = block_places(document, options, flavor)
     versions = library_versions()
     outputs: dict[Path, str | None] = {}
     found = []
@@ -395,221 +397,9 @@ def _stale_reasons(job: BlockJob, text: str | None, stamp: str | None, parts: Ke
 
 def recorded_changes(document: Path, options: RenderOptions, block: str | None = None) -> list[tuple[str, LastRender | None]]:
     """(block id, last render record) for each block (or the one named), for ``premises diff``."""
-    places = _places(document, options, None)
+    places = block_places(document, options, None)
     found = [(p.job.spec.id, p.last) for p in places if block is None or p.job.spec.id == block]
     if block is not None and not found:
         ids = ", ".join(p.job.spec.id for p in places) or "none"
         raise SpecError(f"the document has no block with id '{block}'.", hint=f"Block ids in {document.name}: {ids}.")
     return found
-
-
-# ---------------------------------------------------------------------------
-# ledger and per-observation diagnostics export
-# ---------------------------------------------------------------------------
-
-DIAGNOSTIC_COLUMNS = ("id", "row", "fitted", "residual", "leverage", "studentized", "cooks", "dffits")
-"""Leading columns of a diagnostics table; one ``dfbetas_<term>`` column per term follows."""
-LEDGER_COLUMNS = ("block", "step", "id", "rule", "reason", "prespecified", "category", "registration")
-_EXTRA = "observations.json"
-"""Name of the store extra that holds a block's per-observation tables."""
-
-
-@dataclass(frozen=True)
-class Observations:
-    """Per-observation tables of one block: the reported fit and the fit with exclusions undone."""
-
-    ids_read: tuple[str, ...]
-    """Every row's id in file order (row number = position + 1)."""
-    ledger: tuple[dict[str, Any], ...]
-    """The ledger steps as in the result JSON."""
-    columns: tuple[str, ...]
-    analysed: tuple[tuple[Any, ...], ...]
-    """One row per analysed observation, in ``columns`` order."""
-    undone: tuple[tuple[Any, ...], ...] | None
-    """The same for the refit with every exclusion put back; None when there are no exclusions or it cannot be fitted."""
-    undone_columns: tuple[str, ...] = ()
-
-    def to_json(self) -> dict[str, Any]:
-        """Plain JSON (NaN as null)."""
-        return {
-            "ids_read": list(self.ids_read),
-            "ledger": list(self.ledger),
-            "columns": list(self.columns),
-            "analysed": [list(r) for r in self.analysed],
-            "undone_columns": list(self.undone_columns),
-            "undone": [list(r) for r in self.undone] if self.undone is not None else None,
-        }
-
-    @classmethod
-    def from_json(cls, data: Mapping[str, Any]) -> Observations:
-        """Inverse of :meth:`to_json`."""
-        undone = data.get("undone")
-        return cls(
-            ids_read=tuple(data["ids_read"]),
-            ledger=tuple(data["ledger"]),
-            columns=tuple(data["columns"]),
-            analysed=tuple(tuple(r) for r in data["analysed"]),
-            undone=tuple(tuple(r) for r in undone) if undone is not None else None,
-            undone_columns=tuple(data.get("undone_columns") or ()),
-        )
-
-
-def _finite(value: float) -> float | None:
-    return value if math.isfinite(value) else None
-
-
-def _table(spec: BlockSpec, outcome: Any) -> tuple[tuple[str, ...], tuple[tuple[Any, ...], ...]]:
-    """Fit the ledger's rows as the render does and tabulate the closed-form influence measures."""
-    from premises.analysis import _fit
-    from premises.fit import compute_influence
-
-    _, fit = _fit(spec, outcome)
-    influence = compute_influence(fit)
-    terms = fit.design.column_names
-    columns = DIAGNOSTIC_COLUMNS + tuple(f"dfbetas_{t}" for t in terms)
-    rows = []
-    for i, ident in enumerate(outcome.ids):
-        values = [fit.fitted[i], fit.resid[i], influence.hat[i], influence.studentized_external[i], influence.cooks[i], influence.dffits[i], *influence.dfbetas[i]]
-        rows.append((str(ident), int(outcome.rows[i]), *(_finite(float(v)) for v in values)))
-    return columns, tuple(rows)
-
-
-def compute_observations(spec: BlockSpec, document_dir: Path, options: RenderOptions) -> Observations:
-    """Recompute a block's per-observation tables (reads the data and fits; imports pandas and numpy)."""
-    from premises.analysis import AnalysisOptions, _formula_transforms, prepare_block
-    from premises.errors import PremisesError
-    from premises.ledger import apply_ledger
-    from premises.results import to_jsonable
-
-    prepared = prepare_block(spec, document_dir, AnalysisOptions(allow_outside_data=options.allow_outside_data, max_data_bytes=options.max_data_bytes))
-    transforms = _formula_transforms(spec)
-
-    def ledger(**kw: Any) -> Any:
-        return apply_ledger(spec, prepared.table.frame, prepared.ids, prepared.formula_columns, transforms, **kw)
-
-    outcome = ledger()
-    columns, analysed = _table(spec, outcome)
-    undone_columns: tuple[str, ...] = ()
-    undone = None
-    if spec.exclude:
-        try:
-            undone_columns, undone = _table(spec, ledger(apply_exclusions=False))
-        except PremisesError:
-            undone = None  # the rows put back cannot be fitted: their diagnostics stay blank
-    return Observations(tuple(prepared.ids), tuple(to_jsonable(outcome.steps)), columns, analysed, undone, undone_columns)
-
-
-def _observations(place: _BlockPlace, store: BlockCache | None) -> Observations:
-    """From the store when the block's entry is current, else recomputed (and kept beside the entry)."""
-    job = place.job
-    key = key_parts(job, place.options, library_versions()).key() if store is not None else None
-    if store is not None and key is not None and store.lookup(key) is not None:
-        import json
-
-        raw = store.read_extra(key, _EXTRA)
-        if raw is not None:
-            try:
-                return Observations.from_json(json.loads(raw))
-            except (ValueError, KeyError, TypeError):
-                pass
-        found = compute_observations(job.spec, job.document.parent, place.options)
-        try:
-            store.write_extra(key, _EXTRA, json.dumps(found.to_json(), allow_nan=False).encode("utf-8"))
-        except OSError:
-            pass
-        return found
-    return compute_observations(job.spec, job.document.parent, place.options)
-
-
-def _chosen(document: Path, options: RenderOptions, block: str | None) -> tuple[list[_BlockPlace], BlockCache | None]:
-    places = _places(document, options, None)
-    chosen = [p for p in places if block is None or p.job.spec.id == block]
-    if block is not None and not chosen:
-        ids = ", ".join(p.job.spec.id for p in places) or "none"
-        raise SpecError(f"the document has no block with id '{block}'.", hint=f"Block ids in {document.name}: {ids}.")
-    return chosen, open_cache(document, options)
-
-
-def _yes_no(value: Any) -> str:
-    return "" if value is None else ("true" if value else "false")
-
-
-def ledger_rows(document: Path, options: RenderOptions, block: str | None = None) -> tuple[tuple[str, ...], list[dict[str, Any]]]:
-    """Every excluded or missing row of each block: its step, rule, reason, declarations and diagnostics.
-
-    Diagnostics come from the refit with every exclusion put back (the
-    sensitivity row "exclusions undone"); rows that fit could not use (missing
-    values) have them blank.
-    """
-    chosen, store = _chosen(document, options, block)
-    rows: list[dict[str, Any]] = []
-    extra: list[str] = []
-    for place in chosen:
-        found = _observations(place, store)
-        undone = {r[0]: dict(zip(found.undone_columns, r)) for r in found.undone or ()}
-        extra += [c for c in found.undone_columns[1:] if c not in extra]
-        position = {ident: i + 1 for i, ident in enumerate(found.ids_read)}
-        for step in found.ledger:
-            if step.get("kind") not in ("exclude", "missing"):
-                continue
-            for ident in step.get("removed_ids") or ():
-                row: dict[str, Any] = {
-                    "block": place.job.spec.id,
-                    "step": step["kind"],
-                    "id": ident,
-                    "rule": step.get("rule", ""),
-                    "reason": step.get("reason") or "",
-                    "prespecified": _yes_no(step.get("prespecified")),
-                    "category": step.get("category") or "",
-                    "registration": step.get("registration") or "",
-                    "row": position.get(ident, ""),
-                }
-                row.update({k: v for k, v in undone.get(ident, {}).items() if k not in ("id", "row")})
-                rows.append(row)
-    columns = LEDGER_COLUMNS + ("row",) + tuple(c for c in extra if c != "row")
-    return columns, rows
-
-
-def diagnostics_rows(document: Path, options: RenderOptions, block: str | None = None) -> tuple[tuple[str, ...], list[dict[str, Any]]]:
-    """The per-observation diagnostics of every analysed row, one table over the chosen blocks."""
-    chosen, store = _chosen(document, options, block)
-    columns: list[str] = ["block"]
-    rows: list[dict[str, Any]] = []
-    for place in chosen:
-        found = _observations(place, store)
-        columns += [c for c in found.columns if c not in columns]
-        rows += [{"block": place.job.spec.id, **dict(zip(found.columns, r))} for r in found.analysed]
-    return tuple(columns), rows
-
-
-def _cell(value: Any) -> str:
-    if value is None:
-        return ""
-    if isinstance(value, float):
-        return repr(value)  # shortest text that reads back to the same double
-    return str(value)
-
-
-def write_table(columns: tuple[str, ...], rows: list[dict[str, Any]], path: Path) -> None:
-    """Write rows as CSV (``.csv``) or Parquet (``.parquet``), atomically; blanks for absent values."""
-    suffix = path.suffix.lower()
-    if suffix == ".parquet":
-        import io
-
-        import pandas as pd
-
-        frame = pd.DataFrame([[r.get(c) for c in columns] for r in rows], columns=list(columns))
-        buffer = io.BytesIO()
-        frame.to_parquet(buffer, index=False)
-        atomic_write_bytes(path, buffer.getvalue())
-        return
-    if suffix != ".csv":
-        raise SpecError(f"cannot write '{path.name}': unknown table type '{suffix or '(none)'}'.", hint="Name the file .csv or .parquet.")
-    import csv
-    import io
-
-    text = io.StringIO()
-    writer = csv.writer(text, lineterminator="\n")
-    writer.writerow(columns)
-    writer.writerows([_cell(r.get(c)) for c in columns] for r in rows)
-    atomic_write_bytes(path, text.getvalue().encode("utf-8"))

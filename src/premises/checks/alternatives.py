@@ -104,11 +104,17 @@ def boxcox_profile(
 
 
 def _se_kind(ctx: CheckContext) -> str:
-    """The SE the reported table uses, so 'changed' compares like with like."""
+    """The SE the reported table uses, so 'changed' compares like with like.
+
+    Mirrors the choice under ``se: auto``: cluster-robust with groups, HC3 when
+    the variance check (if it runs) advises it, else classical.
+    """
     se = ctx.spec.se
     if se == "auto":
         if ctx.spec.groups is not None:
             return "cluster"
+        if "variance" not in ctx.spec.checks:
+            return "classical"
         from premises.checks.variance import check_variance
 
         return "HC3" if dict(check_variance(ctx).extra).get("hc3_advised") else "classical"

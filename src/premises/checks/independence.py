@@ -323,7 +323,7 @@ def _cluster_part(ctx: CheckContext, e: np.ndarray, groups: np.ndarray) -> _Part
                 "design effect (violated)",
                 f">= {DEFF_VIOLATED:g}",
                 DEFF_VIOLATED,
-                "Muthen & Satorra 1995 (from memory)",
+                "common practice; usually credited to Muthén & Satorra 1995",
             ),
             ThresholdUse(
                 "clusters", f"< {FEW_CLUSTERS}", float(FEW_CLUSTERS), "Cameron & Miller 2015"

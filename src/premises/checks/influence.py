@@ -52,11 +52,11 @@ MODERATE_T = 2.0
 """|t| counted as large beside high leverage (common practice)."""
 
 _ORIGINS = {
-    ("cooks", "4/n"): "common practice (Bollen & Jackman 1990, from memory)",
-    ("cooks", "1"): "Cook & Weisberg 1982 (from memory)",
+    ("cooks", "4/n"): "common practice; usually credited to Bollen & Jackman 1990",
+    ("cooks", "1"): "common practice; usually credited to Cook & Weisberg 1982",
     ("cooks", "F-median"): "Cook 1977",
     ("leverage", "2p/n"): "Hoaglin & Welsch 1978",
-    ("leverage", "3p/n"): "Velleman & Welsch 1981 (from memory)",
+    ("leverage", "3p/n"): "usually credited to Velleman & Welsch 1981",
     ("dffits", "2*sqrt(p/n)"): "Belsley, Kuh & Welsch 1980",
     ("dfbetas", "2/sqrt(n)"): "Belsley, Kuh & Welsch 1980",
 }
@@ -89,7 +89,7 @@ class Cutoffs:
                 "Cook's distance", self.cooks_expr, self.cooks, origin("cooks", self.cooks_expr)
             ),
             ThresholdUse("Cook's distance", "F-median", self.cooks_f_median, "Cook 1977"),
-            ThresholdUse("Cook's distance", "1", 1.0, "Cook & Weisberg 1982 (from memory)"),
+            ThresholdUse("Cook's distance", "1", 1.0, "common practice; usually credited to Cook & Weisberg 1982"),
             ThresholdUse(
                 "leverage",
                 self.leverage_expr,
@@ -97,7 +97,7 @@ class Cutoffs:
                 origin("leverage", self.leverage_expr),
             ),
             ThresholdUse(
-                "leverage", "3p/n", self.leverage_strict, "Velleman & Welsch 1981 (from memory)"
+                "leverage", "3p/n", self.leverage_strict, "usually credited to Velleman & Welsch 1981"
             ),
             ThresholdUse(
                 "|DFFITS|", self.dffits_expr, self.dffits, origin("dffits", self.dffits_expr)
@@ -367,11 +367,15 @@ def check_influence(ctx: CheckContext) -> Finding:
     method = (
         "Influence was assessed from leverage, externally studentized residuals with a Bonferroni "
         "outlier test, Cook's distance, DFFITS and DFBETAS (closed forms, Belsley, Kuh & Welsch 1980); "
-        "the verdict rests on the largest shift of any coefficient, in standard errors, when one "
-        "observation is left out"
+        "the verdict rests on the largest shift of any coefficient other than the intercept, in "
+        "standard errors, when one observation is left out"
     )
     undefined_ids = [str(ctx.ids[i]) for i in np.flatnonzero(inf.undefined)]
     dfb = np.abs(np.asarray(inf.dfbetas, dtype=float))
+    if p > 1 and "Intercept" in names:
+        # The verdict rests on the model's terms: the intercept's shift depends on where the
+        # predictors' zero lies and is rarely the question (the DFBETAS figure leaves it out too).
+        dfb[:, names.index("Intercept")] = np.nan
     finite = np.isfinite(dfb)
     if finite.any():
         flat = int(np.argmax(np.where(finite, dfb, -np.inf)))
@@ -407,15 +411,13 @@ def check_influence(ctx: CheckContext) -> Finding:
             source="Cook 1977",
         ),
     ]
-    if np.isfinite(shift):
+    if np.isfinite(chance):
         statistics.append(
             Statistic(
-                "largest |DFBETAS|",
-                shift,
-                chance if np.isfinite(chance) else None,
-                (float(n - p - 1),),
-                "Belsley, Kuh & Welsch 1980",
-                note="p: chance that a correct model with this design moves a coefficient this far "
+                "chance of so large a shift under the model",
+                chance,
+                source="Belsley, Kuh & Welsch 1980",
+                note="probability that a correct model with this design moves a coefficient this far "
                 "(union bound over observations)",
             )
         )

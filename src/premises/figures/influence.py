@@ -155,22 +155,24 @@ def draw(data: InfluenceData, fig: Figure) -> None:
     ax.set_ylabel("Studentized residual")
     ax.annotate(
         f"leverage {format_number(data.leverage_cut)}",
-        xy=(data.leverage_cut, 1.0),
+        xy=(data.leverage_cut, 0.0),
         xycoords=("data", "axes fraction"),
-        xytext=(3, -2),
+        xytext=(3, 2),
         textcoords="offset points",
         ha="left",
-        va="top",
+        va="bottom",
         fontsize=7,
         color=COLOURS["threshold"],
     )
     ax.annotate(
         f"|t| {format_number(data.t_cut)}",
-        xy=(1.0, data.t_cut),
+        # The |t| label sits at the left end of its line and the leverage label at the foot of
+        # its line, so the two never meet when the leverage cut-off lies near the right edge.
+        xy=(0.0, data.t_cut),
         xycoords=("axes fraction", "data"),
-        xytext=(-2, 2),
+        xytext=(3, 2),
         textcoords="offset points",
-        ha="right",
+        ha="left",
         va="bottom",
         fontsize=7,
         color=COLOURS["threshold"],
