@@ -227,6 +227,7 @@ def test_hc3_chosen_from_the_residuals_is_called_data_driven(block: dict[str, An
     block["se_reason"] = (
         "the spread of the residuals changes with the fitted values by more than the tool's threshold"
     )
+    block["se_data_driven"] = True
     text = _render(block)
     assert "data-driven choice" in text
     assert "declared before the analysis" not in text
@@ -316,7 +317,7 @@ def test_thresholds_are_tabled_with_values_and_origins(block: dict[str, Any]) ->
         "| Influential observations | Cook's distance > 4/n | 0.0103 | common practice; usually credited to Bollen & Jackman, 1990 |"
         in text
     )
-    assert "| Collinearity | VIF > 10 | \u2014 | Marquardt, 1970 |" in text
+    assert "| Collinearity | VIF > 10 | 10.0 | Marquardt, 1970 |" in text
 
 
 def test_threshold_expressions_keep_their_own_comparison(block: dict[str, Any]) -> None:
@@ -332,8 +333,8 @@ def test_threshold_expressions_keep_their_own_comparison(block: dict[str, Any]) 
         },
     ]
     text = _render(block)
-    assert "| share at a bound \u2265 0.1 | \u2014 | \u2014 |" in text
-    assert "| \u03b1 = 0.05 | \u2014 | declared |" in text
+    assert "| share at a bound \u2265 0.1 | 0.100 | \u2014 |" in text
+    assert "| \u03b1 = 0.05 | 0.0500 | declared |" in text
     assert "| Bonferroni outlier test: n \\* p \\< 0.05 | 0.0500 |" in text
 
 

@@ -223,6 +223,7 @@ def describe_rule(rule: Rule) -> str:
 
     Examples
     --------
+    >>> from premises.rules import parse_rule
     >>> describe_rule(parse_rule("(speed>100)and(site in['a','b'])"))
     "speed > 100 and site in ['a', 'b']"
     """
