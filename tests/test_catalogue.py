@@ -348,7 +348,7 @@ def test_the_documented_limits_are_the_ones_in_force() -> None:
     rows = re.findall(
         r"^\| [^|]+ \| ([0-9,.]+)(?: (GiB|characters|levels))? \| `(?:--[a-z-]+` \(`)?premises\.([a-z.]+)\.([A-Z_]+)`",
         table,
-        re.M,
+        re.MULTILINE,
     )
     assert len(rows) == 11
     for number, unit, module, name in rows:
@@ -365,7 +365,7 @@ def test_check_finds_what_render_finds(case: Case, tmp_path: Path, capsys: pytes
     """``premises check`` validates without fitting: the same message as the render, or success."""
     _skip_if_root(case)
     run = run_case(case, tmp_path / "render", capsys)
-    project, _, document, args = build_case(case, tmp_path / "check")
+    _, _, document, args = build_case(case, tmp_path / "check")
     options = [a for i, a in enumerate(args) if a != "-o" and (i == 0 or args[i - 1] != "-o")]
     code = main(["check", str(document), *options])
     err = capsys.readouterr().err

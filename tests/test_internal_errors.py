@@ -135,10 +135,10 @@ def test_the_console_command_prints_a_traceback_only_with_debug(project: Path) -
     )
     env = {**os.environ, "PYTHONPATH": str(Path(__file__).parents[1] / "src")}
     args = [sys.executable, "-c", code, "render", "doc.md", "-o", "out/doc.md", "--no-cache"]
-    quiet = subprocess.run(args, cwd=project, env=env, capture_output=True, text=True, timeout=120)
+    quiet = subprocess.run(args, check=False, cwd=project, env=env, capture_output=True, text=True, timeout=120)
     assert quiet.returncode == 1
     assert quiet.stderr.count("\n") == 1 and "Traceback" not in quiet.stderr
-    loud = subprocess.run([*args, "--debug"], cwd=project, env=env, capture_output=True, text=True, timeout=120)
+    loud = subprocess.run([*args, "--debug"], check=False, cwd=project, env=env, capture_output=True, text=True, timeout=120)
     assert loud.returncode == 1
     assert "Traceback (most recent call last)" in loud.stderr
     assert "RuntimeError: boom in a stage" in loud.stderr

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import os
-import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -119,4 +118,3 @@ def test_jobs_zero_means_one_per_cpu_and_renders_the_same(tmp_path: Path) -> Non
     done = _cli(auto, "--jobs", "0")
     assert done.returncode == 0, done.stderr
     assert (one.parent / "report.premises.md").read_bytes() == (auto.parent / "report.premises.md").read_bytes()
-    shutil.rmtree(tmp_path)

@@ -26,8 +26,7 @@ import statsmodels.api as sm
 from scipy import stats
 from statsmodels.stats.diagnostic import het_breuschpagan, het_white, linear_reset
 
-import premises.analysis as analysis
-import premises.lsq as lsq
+from premises import analysis, lsq
 from premises.changes import _ordered, compare_results
 from premises.checks.influence import bonferroni_p
 from premises.checks.linearity import reset_from_fit, reset_test
@@ -204,7 +203,7 @@ def test_breusch_pagan_and_white_match_statsmodels() -> None:
 
 
 def test_white_is_skipped_above_the_cell_budget(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
-    import premises.checks.variance as variance
+    from premises.checks import variance
 
     doc, _ = _project(tmp_path, 400, 3)
     monkeypatch.setattr(variance, "WHITE_MAX_CELLS", 1000)
@@ -308,3 +307,29 @@ def test_peak_memory_of_a_block_is_a_few_copies_of_the_design(tmp_path: Path) ->
     # copy of the refinement (about 4 more). 12 designs plus 40 MB of figures and tables leaves
     # headroom; an n x n matrix (320 GB here) or a few more copies of the design would not fit.
     assert peak < 12 * design + 40e6, f"peak {peak / 1e6:.0f} MB for a {design / 1e6:.0f} MB design"
+
+
+def test_per_observation_tables_round_trip_through_the_store(tmp_path: Path) -> None:
+    from premises.exports import Observations, diagnostics_rows, ledger_rows
+    from premises.pipeline import RenderOptions, render_file
+
+    doc, frame = _project(tmp_path, 120, 2)
+    frame.loc[3, "x1"] = np.nan  # a missing row, blank in the tables
+    frame.to_parquet(tmp_path / "data.parquet", index=False)
+    text = doc.read_text(encoding="utf-8").replace(
+        "groups: site\n", "groups: site\nexclude:\n  - when: x2 > 1.5\n    reason: outside the range studied\n"
+    )
+    doc.write_text(text, encoding="utf-8")
+    options = RenderOptions(cache_dir=tmp_path / "store")
+    render_file(doc, options=options)
+    fresh = diagnostics_rows(doc, RenderOptions(use_cache=False)), ledger_rows(doc, RenderOptions(use_cache=False))
+    first = diagnostics_rows(doc, options), ledger_rows(doc, options)  # computed, kept beside the entry
+    stored = list((tmp_path / "store").rglob("observations.npz"))
+    assert len(stored) == 1
+    second = diagnostics_rows(doc, options), ledger_rows(doc, options)  # read back
+    assert fresh == first == second
+    assert any(row.get("studentized") is None for row in second[1][1])  # the missing row: blank measures
+    found = Observations.from_npz(stored[0].read_bytes())
+    assert Observations.from_npz(found.to_npz()) == found
+    empty = Observations(("1",), (), ("id", "row", "fitted"), (), None, ())
+    assert Observations.from_npz(empty.to_npz()) == empty
