@@ -10,9 +10,10 @@ from __future__ import annotations
 
 import hashlib
 import os
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Callable
+from typing import TYPE_CHECKING
 
 from premises.errors import DataError, Location
 from premises.results import DataInfo
@@ -318,7 +319,7 @@ def load_table(
         frame = reader(path)
     except DataError as exc:
         raise DataError(f"cannot read '{data}': {exc.problem}", where, hint=exc.hint) from exc
-    except Exception as exc:  # noqa: BLE001 - readers of binary formats raise many kinds (BadZipFile, ArrowInvalid, ...)
+    except Exception as exc:
         raise DataError(
             f"cannot read '{data}' as {fmt}: {str(exc).strip().splitlines()[0].rstrip('.') if str(exc).strip() else type(exc).__name__}.",
             where,
@@ -333,7 +334,7 @@ def load_table(
     info = DataInfo(
         path=data.replace(os.sep, "/"),
         sha256=_sha256(path),
-        rows_read=int(len(frame)),
+        rows_read=len(frame),
         columns=tuple(frame.columns),
         format=fmt,
     )

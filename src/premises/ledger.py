@@ -31,7 +31,7 @@ if TYPE_CHECKING:
 
     from premises.formula import FormulaTransform
 
-__all__ = ["LedgerOutcome", "TRANSFORMS", "apply_ledger", "check_columns"]
+__all__ = ["TRANSFORMS", "LedgerOutcome", "apply_ledger", "check_columns"]
 
 
 @dataclass(frozen=True)
@@ -50,25 +50,25 @@ class LedgerOutcome:
 
 
 def _log(x: np.ndarray) -> np.ndarray:
-    return np.log(x)
+    return np.asarray(np.log(x), dtype=float)
 
 
 def _log2(x: np.ndarray) -> np.ndarray:
-    return np.log2(x)
+    return np.asarray(np.log2(x), dtype=float)
 
 
 def _log10(x: np.ndarray) -> np.ndarray:
-    return np.log10(x)
+    return np.asarray(np.log10(x), dtype=float)
 
 
 def _sqrt(x: np.ndarray) -> np.ndarray:
-    return np.sqrt(x)
+    return np.asarray(np.sqrt(x), dtype=float)
 
 
 def _rank(x: np.ndarray) -> np.ndarray:
     from scipy.stats import rankdata
 
-    return rankdata(x, method="average")
+    return np.asarray(rankdata(x, method="average"), dtype=float)
 
 
 def _zscore(x: np.ndarray) -> np.ndarray:
@@ -349,7 +349,7 @@ def _transform_values(spec: BlockSpec, t: TransformSpec, frame: pd.DataFrame, id
     if t.op == "winsorize":
         lo, hi = t.limits or (0.05, 0.95)
         low, high = np.nanquantile(values, [lo, hi])
-        return np.clip(values, low, high)
+        return np.asarray(np.clip(values, low, high), dtype=float)
     try:
         return _FUNCTIONS[t.op](values)
     except ValueError as exc:

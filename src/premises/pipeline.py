@@ -398,7 +398,7 @@ def _pandoc_path() -> str:
     import shutil
 
     try:
-        import pypandoc  # type: ignore[import-untyped]
+        import pypandoc
 
         return str(pypandoc.get_pandoc_path())
     except (ImportError, OSError):

@@ -302,7 +302,7 @@ def prerender(
     options: RenderOptions | None = None,
     *,
     echo: Callable[[str], None] | None = None,
-    warm: Callable[[Path], None] | None = None,
+    warm: Callable[[Path], object] | None = None,
 ) -> PrerenderReport:
     """Validate every block of every document before Quarto renders any page.
 
