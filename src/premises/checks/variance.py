@@ -157,15 +157,31 @@ def white_test(resid: np.ndarray, x: np.ndarray) -> dict[str, float]:
     }
 
 
+def _third(values: np.ndarray, count: int, *, top: bool) -> np.ndarray:
+    """Indices of the ``count`` smallest (or largest) values, ties taken as a stable sort takes them.
+
+    Two partial sorts, O(n) (a full argsort costs 0.2 s at 10^6 rows): every
+    value beyond the cut, then tied values at the cut in index order (the
+    first ones for the bottom, the last ones for the top).
+    """
+    n = values.size
+    kth = n - count if top else count - 1
+    cut = np.partition(values, kth)[kth]
+    beyond = np.flatnonzero(values > cut if top else values < cut)
+    ties = np.flatnonzero(values == cut)
+    need = count - beyond.size
+    return np.concatenate([beyond, ties[ties.size - need :] if top else ties[:need]])
+
+
 def spread_ratio(fitted: np.ndarray, resid: np.ndarray) -> tuple[float, str]:
     """Ratio (>= 1) of mean absolute residual between the top and bottom thirds of fitted values.
 
     Returns the ratio and which third has the larger spread ("top" or "bottom").
     """
-    order = np.argsort(fitted, kind="stable")
-    third = max(len(order) // 3, 1)
-    bottom = float(np.mean(np.abs(resid[order[:third]])))
-    top = float(np.mean(np.abs(resid[order[-third:]])))
+    fitted = np.asarray(fitted, dtype=float)
+    third = max(fitted.size // 3, 1)
+    bottom = float(np.mean(np.abs(resid[_third(fitted, third, top=False)])))
+    top = float(np.mean(np.abs(resid[_third(fitted, third, top=True)])))
     if min(top, bottom) <= 0.0:
         return float("inf"), "top" if top >= bottom else "bottom"
     return (top / bottom, "top") if top >= bottom else (bottom / top, "bottom")

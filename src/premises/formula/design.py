@@ -221,6 +221,37 @@ def _check_finite(name: str, values: np.ndarray, formula: str, location: Locatio
         )
 
 
+def _plain_columns(builders: Any, frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray] | None:
+    """(y, X) without patsy's matrix builder when every term is a bare numeric column or the intercept.
+
+    patsy's design infos (built from the data by ``design_matrix_builders``)
+    fix the columns, their order and names; for ``y ~ x1 + x2 + ...`` the
+    matrix is then the intercept and the columns stacked, the same numbers in
+    the same (row-major) layout. patsy fills it column by column in Python,
+    about 1 s at 10^6 rows and 10 columns against 0.25 s here. None for any
+    other term (a function, an interaction, a factor): patsy builds those.
+    """
+    outcome_info, design_info = builders
+    columns: list[str | None] = []
+    for info, allowed_intercept in ((outcome_info, False), (design_info, True)):
+        for term in info.terms:
+            if not term.factors and allowed_intercept:
+                columns.append(None)
+                continue
+            if len(term.factors) != 1:
+                return None
+            factor = term.factors[0]
+            found = info.factor_infos[factor]
+            if found.type != "numerical" or found.num_columns != 1 or factor.code not in frame.columns:
+                return None
+            columns.append(factor.code)
+    if len(outcome_info.terms) != 1 or len(columns) != 1 + len(design_info.column_names):
+        return None
+    y = frame[columns[0]].to_numpy(dtype=np.float64, copy=True)
+    stacked = [np.ones(len(frame)) if c is None else frame[c].to_numpy(dtype=np.float64) for c in columns[1:]]
+    return y, np.column_stack(stacked) if stacked else np.empty((len(frame), 0))
+
+
 def build_design(formula: str, frame: pd.DataFrame, *, location: Location | None = None) -> Design:
     """Evaluate a checked formula on ``frame`` (a pandas DataFrame without missing values).
 
@@ -263,15 +294,25 @@ def build_design(formula: str, frame: pd.DataFrame, *, location: Location | None
     _check_rows(reading, frame, location)
     try:
         with np.errstate(all="ignore"):  # undefined values are reported per term below
-            y_frame, x_frame = patsy.dmatrices(
-                reading.description,
-                frame,
-                eval_env=_sealed_environment(),
+            environment = _sealed_environment()
+            description = reading.description
+            builders = patsy.design_matrix_builders(
+                [description.lhs_termlist, description.rhs_termlist],
+                lambda: iter([frame]),
+                environment,
                 NA_action=patsy.NAAction(NA_types=[]),
-                # Plain matrices: a DataFrame wrapper and its to_numpy() cost two more
-                # copies of the design (0.6 s and 160 MB at 10^6 x 10).
-                return_type="matrix",
             )
+            plain = _plain_columns(builders, frame)
+            if plain is None:
+                y_frame, x_frame = patsy.dmatrices(
+                    description,
+                    frame,
+                    eval_env=environment,
+                    NA_action=patsy.NAAction(NA_types=[]),
+                    # Plain matrices: a DataFrame wrapper and its to_numpy() cost two more
+                    # copies of the design (0.6 s and 160 MB at 10^6 x 10).
+                    return_type="matrix",
+                )
     except patsy.PatsyError as exc:
         raise DataError(
             f"The model formula `{shorten(formula)}` cannot be evaluated on the data: "
@@ -280,11 +321,15 @@ def build_design(formula: str, frame: pd.DataFrame, *, location: Location | None
             "Check that each column holds what its term needs: numbers for arithmetic "
             "and logs, labels for C().",
         ) from exc
-    if y_frame.shape[1] != 1:
-        raise DataError(_not_numeric(reading.outcome, "categories"), location, _NOT_NUMERIC_HINT)
-    y = np.array(np.asarray(y_frame)[:, 0], dtype=np.float64)
-    X = np.asarray(x_frame, dtype=np.float64).view(np.ndarray)
-    info = x_frame.design_info
+    if plain is not None:
+        y, X = plain
+        info = builders[1]
+    else:
+        if y_frame.shape[1] != 1:
+            raise DataError(_not_numeric(reading.outcome, "categories"), location, _NOT_NUMERIC_HINT)
+        y = np.array(np.asarray(y_frame)[:, 0], dtype=np.float64)
+        X = np.asarray(x_frame, dtype=np.float64).view(np.ndarray)
+        info = x_frame.design_info
     term_slices = tuple((name, s.start, s.stop) for name, s in info.term_name_slices.items())
     _check_finite(reading.outcome, y, formula, location)
     for name, start, stop in term_slices:
