@@ -385,9 +385,10 @@ def check_variance(ctx: CheckContext) -> Finding:
             "settling for robust standard errors (King & Roberts 2015)."
         )
     notes.append(
-        "Long & Ervin (2000) advise against choosing the standard error from a pre-test; HC3 is "
-        "shown because of the size of the spread ratio, and is valid whether or not the "
-        "variance is constant."
+        "Long & Ervin (2000) advise against choosing the standard error from a pre-test: a "
+        "robust standard error shown here follows the size of the spread ratio or a declared "
+        "choice, never the test's p value, and HC3 is valid whether or not the variance is "
+        "constant."
     )
     return Finding(
         assumption="variance",
