@@ -14,7 +14,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from premises._version import FORMAT_VERSION, __version__
+from premises._version import FORMAT_VERSION
 from premises.errors import DataError, ModelError, PremisesError, SpecError
 from premises.results import (
     BlockResult,
@@ -36,7 +36,7 @@ if TYPE_CHECKING:
     from premises.formula import Design
     from premises.ledger import LedgerOutcome
 
-__all__ = ["AnalysisOptions", "analyse_block", "prepare_block", "library_versions"]
+__all__ = ["AnalysisOptions", "analyse_block", "library_versions", "prepare_block"]
 
 
 ANALYSED_IDS_MAX = 100_000
@@ -307,8 +307,10 @@ def _subset_row(
 
 
 def _formula_transforms(spec: BlockSpec) -> tuple[Any, ...]:
-    from premises.formula import check_formula  # noqa: F401
-    from premises.formula import formula_transforms
+    from premises.formula import (
+        check_formula,  # noqa: F401
+        formula_transforms,
+    )
 
     return formula_transforms(spec.model)
 
@@ -352,7 +354,6 @@ def analyse_block(
     options: AnalysisOptions,
 ) -> BlockResult:
     """Run one block end to end and return its result (figures written to ``figure_dir``)."""
-    from premises.checks.alternatives import fit_alternatives
     from premises.checks.base import CheckContext, run_checks
     from premises.checks.influence import flag_points
     from premises.fit import compute_influence

@@ -9,8 +9,8 @@ from __future__ import annotations
 
 import argparse
 import sys
+from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Callable, Sequence
 
 from premises._version import PROTOCOL_VERSION, __version__
 
@@ -91,7 +91,7 @@ def _run_render(args: argparse.Namespace) -> int:
 
     options = _options(args, flavor=args.flavor if args.to == "md" else "pandoc", detail=args.detail, jobs=args.jobs)
     output = args.output or default_output(args.document)
-    done = render_file(args.document, output, options, json_path=args.json_path)
+    render_file(args.document, output, options, json_path=args.json_path)
     print(f"wrote {output}")
     if args.to == "html":
         html = write_html(output, output.with_suffix(".html"), title=args.document.stem)
@@ -182,7 +182,6 @@ def _run_quarto_install(args: argparse.Namespace) -> int:
 
 def _run_quarto_prerender(args: argparse.Namespace) -> int:
     import os
-
     from functools import partial
 
     from premises.quarto import prerender, project_inputs, quiet_from_env, warm_document
@@ -340,7 +339,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("premises: interrupted; earlier outputs were left as they were.", file=sys.stderr)
         return 130
-    except Exception as exc:  # noqa: BLE001 - the one place a bug becomes a message
+    except Exception as exc:
         if getattr(args, "debug", False):
             raise
         print(
