@@ -11,7 +11,7 @@ import pandas as pd
 import pytest
 
 from premises.checks import CheckContext
-from premises.checks.collinearity import check_collinearity, generalised_vif, vif_from_correlation
+from premises.checks.collinearity import assess_collinearity, generalised_vif, vif_from_correlation
 from premises.fit import compute_influence, fit_model
 from premises.formula import build_design
 from premises.spec import BlockSpec
@@ -73,7 +73,7 @@ def test_longley_vifs_match_statsmodels(longley: pd.DataFrame) -> None:
 
 def test_check_reports_the_largest_vif_and_warns_against_dropping(longley: pd.DataFrame) -> None:
     ctx = make_context(longley, "y ~ x1 + x2 + x3 + x4 + x5 + x6")
-    finding = check_collinearity(ctx)
+    finding = assess_collinearity(ctx)
     vif = dict(finding.extra)["vif"]
     assert finding.verdict == "violated"  # VIF 1789 >= 10 x 10
     assert finding.measure is not None
@@ -115,7 +115,7 @@ def test_factor_terms_get_one_generalised_vif() -> None:
         {"x": rng.normal(size=n) + (site == "d"), "site": site, "z": rng.normal(size=n)}
     )
     frame["y"] = frame.x + rng.normal(size=n)
-    finding = check_collinearity(make_context(frame, "y ~ x + C(site) + z"))
+    finding = assess_collinearity(make_context(frame, "y ~ x + C(site) + z"))
     extra = dict(finding.extra)
     assert set(extra["vif"]) == {"x", "C(site)", "z"}
     assert extra["df"]["C(site)"] == 3
@@ -126,7 +126,7 @@ def test_high_vifs_of_a_power_and_its_base_are_explained_as_harmless() -> None:
     rng = np.random.default_rng(8)
     frame = pd.DataFrame({"age": rng.uniform(40, 60, size=150), "w": rng.normal(size=150)})
     frame["y"] = frame.age + rng.normal(size=150)
-    finding = check_collinearity(make_context(frame, "y ~ age + I(age**2) + w"))
+    finding = assess_collinearity(make_context(frame, "y ~ age + I(age**2) + w"))
     extra = dict(finding.extra)
     assert extra["vif"]["age"] > 100
     assert extra["structural"] is True
@@ -136,7 +136,7 @@ def test_high_vifs_of_a_power_and_its_base_are_explained_as_harmless() -> None:
 
 def test_a_single_predictor_is_not_assessed() -> None:
     frame = pd.DataFrame({"x": np.arange(10.0), "y": np.arange(10.0) ** 1.1})
-    finding = check_collinearity(make_context(frame, "y ~ x"))
+    finding = assess_collinearity(make_context(frame, "y ~ x"))
     assert finding.verdict == "not-assessed"
     assert finding.reason == "fewer than two predictor terms"
 
@@ -148,7 +148,7 @@ def test_declared_vif_threshold_is_used() -> None:
     a = rng.normal(size=300)
     frame = pd.DataFrame({"a": a, "b": 0.9 * a + np.sqrt(1 - 0.81) * rng.normal(size=300)})
     frame["y"] = frame.a + rng.normal(size=300)
-    default = check_collinearity(make_context(frame, "y ~ a + b"))
-    strict = check_collinearity(make_context(frame, "y ~ a + b", thresholds=Thresholds(vif=2.5)))
+    default = assess_collinearity(make_context(frame, "y ~ a + b"))
+    strict = assess_collinearity(make_context(frame, "y ~ a + b", thresholds=Thresholds(vif=2.5)))
     assert default.verdict == "holds"  # VIF about 5 < 10 (Marquardt 1970)
     assert strict.verdict == "concern"  # 5 >= 2.5 (Allison 2012's stricter convention)

@@ -14,7 +14,7 @@ from premises.checks import CheckContext
 from premises.checks.independence import (
     DEFF_CONCERN,
     breusch_godfrey,
-    check_independence,
+    assess_independence,
     cluster_summary,
     serial_summary,
 )
@@ -56,7 +56,7 @@ def test_durbin_watson_static_phillips_curve(phillips: pd.DataFrame) -> None:
     # Rows shuffled: the check must sort by the declared order, not trust the file order.
     shuffled = phillips.sample(frac=1.0, random_state=7)
     ctx = make_context(shuffled, "inflation ~ unem", order="year")
-    finding = check_independence(ctx)
+    finding = assess_independence(ctx)
     extra = dict(finding.extra)
     assert ctx.fit.n == PUBLISHED["static_n"]["value"]
     # d = .80 (Wooldridge 2019, sect. 12.2; from memory); statsmodels durbin_watson 0.8027 (values.json)
@@ -74,7 +74,7 @@ def test_durbin_watson_static_phillips_curve(phillips: pd.DataFrame) -> None:
 
 def test_durbin_watson_expectations_augmented_curve(phillips: pd.DataFrame) -> None:
     frame = phillips.dropna(subset=["cinf"])
-    finding = check_independence(make_context(frame, "cinf ~ unem", order="year"))
+    finding = assess_independence(make_context(frame, "cinf ~ unem", order="year"))
     extra = dict(finding.extra)
     # d = 1.77 (Wooldridge 2019, sect. 12.2; from memory); statsmodels 1.7696 (values.json)
     assert extra["durbin_watson"] == pytest.approx(PUBLISHED["augmented_DW"]["value"], abs=0.005)
@@ -144,7 +144,7 @@ def _clustered(icc: float, groups: int, size: int, seed: int) -> pd.DataFrame:
 
 
 def test_clustered_residuals_are_flagged_with_advice() -> None:
-    finding = check_independence(make_context(_clustered(0.3, 30, 12, 1), "y ~ x", groups="school"))
+    finding = assess_independence(make_context(_clustered(0.3, 30, 12, 1), "y ~ x", groups="school"))
     extra = dict(finding.extra)
     assert finding.verdict in ("concern", "violated")
     assert extra["design_effect"] >= DEFF_CONCERN
@@ -155,14 +155,14 @@ def test_clustered_residuals_are_flagged_with_advice() -> None:
 
 
 def test_independent_groups_hold() -> None:
-    finding = check_independence(make_context(_clustered(0.0, 60, 8, 2), "y ~ x", groups="school"))
+    finding = assess_independence(make_context(_clustered(0.0, 60, 8, 2), "y ~ x", groups="school"))
     assert finding.verdict == "holds"
     assert dict(finding.extra)["cluster_robust_advised"] is False
     assert dict(finding.extra)["few_clusters"] is False
 
 
 def test_nothing_declared_is_not_assessed() -> None:
-    finding = check_independence(make_context(_clustered(0.3, 10, 5, 3), "y ~ x"))
+    finding = assess_independence(make_context(_clustered(0.3, 10, 5, 3), "y ~ x"))
     assert finding.verdict == "not-assessed"
     assert finding.reason == "no order or groups declared"
     assert not any(s.name == "Durbin-Watson d" for s in finding.statistics)
@@ -173,4 +173,4 @@ def test_missing_values_in_the_order_column_are_a_data_error() -> None:
     frame["t"] = np.arange(len(frame), dtype=float)
     frame.loc[3, "t"] = np.nan
     with pytest.raises(DataError, match="missing values"):
-        check_independence(make_context(frame, "y ~ x", order="t"))
+        assess_independence(make_context(frame, "y ~ x", order="t"))

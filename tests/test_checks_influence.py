@@ -14,7 +14,7 @@ from scipy import stats
 from premises.checks import CheckContext
 from premises.checks.influence import (
     bonferroni_p,
-    check_influence,
+    assess_influence,
     evaluate_cutoffs,
     flag_points,
     isolated_leverage,
@@ -68,7 +68,7 @@ def test_anscombe_iii_observation_3_is_a_bonferroni_outlier() -> None:
     assert "Cook's distance > 1" in third.rules
     assert third.largest_term == "x"  # DFBETAS 525 on the slope vs -358 on the intercept
     assert not third.undefined
-    finding = check_influence(ctx)
+    finding = assess_influence(ctx)
     assert finding.verdict == "violated"
     assert dict(finding.extra)["bonferroni_outliers"] == ["obs3"]
 
@@ -85,7 +85,7 @@ def test_anscombe_iv_observation_8_is_undefined_not_nan() -> None:
     assert eighth.rules == (
         "leverage 1 (undefined: this observation alone determines a coefficient)",
     )
-    finding = check_influence(ctx)
+    finding = assess_influence(ctx)
     assert finding.verdict == "violated"
     assert finding.measure is not None and finding.measure.value is None
     assert "alone determines a coefficient" in finding.summary
@@ -94,7 +94,7 @@ def test_anscombe_iv_observation_8_is_undefined_not_nan() -> None:
 
 
 def test_anscombe_i_holds_its_conventional_flags_listed() -> None:
-    finding = check_influence(anscombe("I"))
+    finding = assess_influence(anscombe("I"))
     crossings = dict(finding.extra)["crossings"]
     # statsmodels: observation 3 has Cook's D 0.489 > 4/11 (values.json); it is counted, not flagged
     assert crossings["cooks > 4/n"] >= 1
@@ -167,7 +167,7 @@ def test_a_planted_influential_point_is_found_and_named() -> None:
     y = 1 + x + rng.normal(size=n)
     x[17], y[17] = 4.0, 1 + 4.0 - 5.0
     ctx = make_context(pd.DataFrame({"x": x, "y": y}), "y ~ x")
-    finding = check_influence(ctx)
+    finding = assess_influence(ctx)
     assert finding.verdict in ("concern", "violated")
     assert dict(finding.extra)["largest_dfbetas_observation"] == "obs18"
     assert dict(finding.extra)["largest_dfbetas_term"] == "x"

@@ -12,7 +12,7 @@ import pytest
 from premises.checks import CheckContext
 from premises.checks.linearity import (
     SHARE_CONCERN,
-    check_linearity,
+    assess_linearity,
     harvey_collier,
     predictor_curves,
     reset_test,
@@ -71,7 +71,7 @@ def test_the_check_reports_the_same_reset_as_statsmodels() -> None:
     frame = _curved(300, 0.2, 9)
     frame["g"] = rng.choice(["a", "b", "c"], size=300)
     ctx = make_context(frame, "y ~ x1 + x2 + C(g)")
-    finding = check_linearity(ctx)
+    finding = assess_linearity(ctx)
     reset = next(s for s in finding.statistics if s.name.startswith("RESET"))
     # Ramsey (1969) via statsmodels linear_reset on the same design (the check's own route differs)
     reference = linear_reset(sm.OLS(ctx.fit.design.y, ctx.fit.design.X).fit(), power=3, use_f=True)
@@ -103,7 +103,7 @@ def test_harvey_collier_is_defined_with_factor_dummies() -> None:
         {"x": rng.normal(size=n), "g": rng.choice(list("abcd"), size=n), "t": np.arange(n)}
     )
     frame["y"] = frame.x + rng.normal(size=n)
-    finding = check_linearity(make_context(frame, "y ~ x + C(g)", order="t"))
+    finding = assess_linearity(make_context(frame, "y ~ x + C(g)", order="t"))
     hc = next(s for s in finding.statistics if s.name.startswith("Harvey-Collier"))
     assert hc.value is not None and np.isfinite(hc.value)
 
@@ -159,21 +159,21 @@ def test_predictor_curves_use_linear_numeric_terms_only() -> None:
 def test_anscombe_ii_curvature_is_violated() -> None:
     wide = pd.read_csv(DATA / "anscombe.csv")
     frame = pd.DataFrame({"x": wide.x2.astype(float), "y": wide.y2})
-    finding = check_linearity(make_context(frame, "y ~ x"))
+    finding = assess_linearity(make_context(frame, "y ~ x"))
     # Anscombe (1973) set II: a smooth curve that a straight line misses
     assert finding.verdict == "violated"
     assert finding.measure is not None and finding.measure.value > 0.9
 
 
 def test_curvature_is_flagged_and_named() -> None:
-    finding = check_linearity(make_context(_curved(400, 0.35, 7), "y ~ x1 + x2"))
+    finding = assess_linearity(make_context(_curved(400, 0.35, 7), "y ~ x1 + x2"))
     assert finding.verdict in ("concern", "violated")
     assert dict(finding.extra)["worst"] == "x1"
     assert "x1" in finding.remedy
 
 
 def test_straight_line_holds_even_when_reset_rejects_a_trivial_curve() -> None:
-    finding = check_linearity(make_context(_curved(20000, 0.05, 8), "y ~ x1 + x2"))
+    finding = assess_linearity(make_context(_curved(20000, 0.05, 8), "y ~ x1 + x2"))
     reset = next(s for s in finding.statistics if s.name.startswith("RESET"))
     assert reset.p is not None and reset.p < 0.05
     assert finding.measure is not None and finding.measure.value < SHARE_CONCERN

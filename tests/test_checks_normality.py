@@ -15,7 +15,7 @@ from premises.checks import CheckContext
 from premises.checks.normality import (
     SHAPIRO_MAX_N,
     anderson_darling,
-    check_normality,
+    assess_normality,
     qq_data,
     shapiro_wilk,
     tail_deviation,
@@ -125,7 +125,7 @@ def _errors(kind: str, n: int, seed: int) -> pd.DataFrame:
 
 @pytest.mark.parametrize("kind", ["t3", "skewed"])
 def test_heavy_or_skewed_errors_are_flagged(kind: str) -> None:
-    finding = check_normality(make_context(_errors(kind, 300, 1), "y ~ x"))
+    finding = assess_normality(make_context(_errors(kind, 300, 1), "y ~ x"))
     assert finding.verdict in ("concern", "violated")
     assert finding.measure is not None and finding.measure.value >= 0.7
 
@@ -133,14 +133,14 @@ def test_heavy_or_skewed_errors_are_flagged(kind: str) -> None:
 def test_t30_errors_at_large_n_are_not_violated_although_a_test_may_reject() -> None:
     # Lumley et al. (2002): at large n the CLT carries coefficient inference.
     verdicts = [
-        check_normality(make_context(_errors("t30", 2000, seed), "y ~ x")).verdict
+        assess_normality(make_context(_errors("t30", 2000, seed), "y ~ x")).verdict
         for seed in range(10)
     ]
     assert verdicts.count("violated") == 0
 
 
 def test_small_sample_nonsignificant_test_says_it_is_weak_evidence() -> None:
-    finding = check_normality(make_context(_errors("normal", 25, 2), "y ~ x"))
+    finding = assess_normality(make_context(_errors("normal", 25, 2), "y ~ x"))
     assert finding.verdict == "holds"
     assert any("Ruxton" in note for note in finding.notes)
 
@@ -150,7 +150,7 @@ def test_significant_but_small_departure_at_large_n_is_explained() -> None:
     rng = np.random.default_rng(9)
     x = rng.normal(size=5000)
     error = rng.normal(size=5000) + 0.15 * (rng.normal(size=5000) ** 2 - 1)
-    finding = check_normality(make_context(pd.DataFrame({"x": x, "y": x + error}), "y ~ x"))
+    finding = assess_normality(make_context(pd.DataFrame({"x": x, "y": x + error}), "y ~ x"))
     shapiro = next(s for s in finding.statistics if s.name == "Shapiro-Wilk W")
     assert shapiro.p is not None and shapiro.p < 0.05
     assert finding.verdict == "holds"

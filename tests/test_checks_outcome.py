@@ -9,7 +9,7 @@ import pandas as pd
 import pytest
 
 from premises.checks import CheckContext
-from premises.checks.outcome import check_outcome, describe_outcome
+from premises.checks.outcome import assess_outcome, describe_outcome
 from premises.errors import ModelError
 from premises.fit import compute_influence, fit_model
 from premises.formula import Design, build_design
@@ -42,7 +42,7 @@ def _frame(y: Any, n: int = 80, seed: int = 0) -> pd.DataFrame:
 
 def test_a_continuous_outcome_holds() -> None:
     rng = np.random.default_rng(1)
-    finding = check_outcome(make_context(_frame(rng.normal(size=80)), "y ~ x"))
+    finding = assess_outcome(make_context(_frame(rng.normal(size=80)), "y ~ x"))
     assert finding.verdict == "holds"
     assert finding.figure is None  # the outcome check draws no figure of its own
 
@@ -51,7 +51,7 @@ def test_a_binary_outcome_is_refused_with_logistic_advice() -> None:
     rng = np.random.default_rng(2)
     ctx = make_context(_frame(rng.integers(0, 2, size=80).astype(float)), "y ~ x")
     with pytest.raises(ModelError, match="two values") as caught:
-        check_outcome(ctx)
+        assess_outcome(ctx)
     assert caught.value.hint is not None and "logistic regression" in caught.value.hint
 
 
@@ -73,13 +73,13 @@ def test_a_categorical_outcome_is_refused_with_multinomial_advice() -> None:
         True,
     )
     with pytest.raises(ModelError, match="categorical") as caught:
-        check_outcome(make_context(frame, "y ~ x", design=design))
+        assess_outcome(make_context(frame, "y ~ x", design=design))
     assert caught.value.hint is not None and "multinomial" in caught.value.hint
 
 
 def test_small_counts_are_a_concern_with_poisson_advice() -> None:
     rng = np.random.default_rng(4)
-    finding = check_outcome(make_context(_frame(rng.poisson(2.0, size=80).astype(float)), "y ~ x"))
+    finding = assess_outcome(make_context(_frame(rng.poisson(2.0, size=80).astype(float)), "y ~ x"))
     assert finding.verdict == "concern"
     assert any("Poisson" in note for note in finding.notes)
     assert "count" in finding.measure.name  # type: ignore[union-attr]
@@ -89,7 +89,7 @@ def test_many_values_at_a_bound_are_a_concern() -> None:
     rng = np.random.default_rng(5)
     y = np.clip(rng.normal(60, 25, size=80), 0, 100).round(1)
     y[:15] = 100.0  # a ceiling
-    finding = check_outcome(make_context(_frame(y), "y ~ x"))
+    finding = assess_outcome(make_context(_frame(y), "y ~ x"))
     assert finding.verdict == "concern"
     assert any("ceiling" in note for note in finding.notes)
 

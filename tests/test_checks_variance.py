@@ -15,7 +15,7 @@ from premises.checks import CheckContext
 from premises.checks.variance import (
     SPREAD_CONCERN,
     breusch_pagan,
-    check_variance,
+    assess_variance,
     factor_spread,
     spread_ratio,
     white_test,
@@ -156,7 +156,7 @@ def _simulated(n: int, growth: float, seed: int) -> pd.DataFrame:
 
 
 def test_variance_growing_with_the_mean_is_flagged_and_hc3_advised() -> None:
-    finding = check_variance(make_context(_simulated(400, 0.5, 1), "y ~ x"))
+    finding = assess_variance(make_context(_simulated(400, 0.5, 1), "y ~ x"))
     assert finding.verdict in ("concern", "violated")
     assert finding.measure is not None and finding.measure.value >= SPREAD_CONCERN
     assert dict(finding.extra)["hc3_advised"] is True
@@ -164,14 +164,14 @@ def test_variance_growing_with_the_mean_is_flagged_and_hc3_advised() -> None:
 
 
 def test_constant_variance_holds_and_hc3_not_advised() -> None:
-    finding = check_variance(make_context(_simulated(400, 0.0, 2), "y ~ x"))
+    finding = assess_variance(make_context(_simulated(400, 0.0, 2), "y ~ x"))
     assert finding.verdict == "holds"
     assert dict(finding.extra)["hc3_advised"] is False
 
 
 def test_trivial_heteroscedasticity_at_large_n_is_not_a_violation() -> None:
     # At n = 20000 Breusch-Pagan detects a 10% change in SD, which does not matter (Li et al. 2024).
-    finding = check_variance(make_context(_simulated(20000, 0.05, 3), "y ~ x"))
+    finding = assess_variance(make_context(_simulated(20000, 0.05, 3), "y ~ x"))
     statistics = {s.name: s for s in finding.statistics}
     assert statistics["Breusch-Pagan LM (Koenker)"].p < 0.05
     assert finding.verdict == "holds"
@@ -181,6 +181,6 @@ def test_white_is_skipped_with_a_note_when_there_are_too_many_terms() -> None:
     rng = np.random.default_rng(4)
     frame = pd.DataFrame(rng.normal(size=(40, 12)), columns=[f"x{i}" for i in range(12)])
     frame["y"] = rng.normal(size=40)
-    finding = check_variance(make_context(frame, "y ~ " + " + ".join(f"x{i}" for i in range(12))))
+    finding = assess_variance(make_context(frame, "y ~ " + " + ".join(f"x{i}" for i in range(12))))
     assert not any(s.name == "White LM" for s in finding.statistics)
     assert any("White's test was skipped" in note for note in finding.notes)

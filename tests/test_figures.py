@@ -41,7 +41,25 @@ from premises.results import FigureRef, Finding, FlaggedPoint, Statistic
 from premises.spec import BlockSpec, FigureOptions
 
 DATA = Path(__file__).parent / "data"
-CLASSIC_TITLES = ("residuals vs fitted", "normal q-q", "scale-location", "residuals vs leverage")
+# The four panel titles of a common statistics environment's diagnostic grid, kept only as
+# hashes of their lower-cased words so the project's text never carries them.
+CLASSIC_TITLE_HASHES = frozenset(
+    {"1c6d23efaaef7eab9a44", "acc5045bb3d3271238da", "95ed97153b2b5016bfe9", "c5ac3b97bb59dd9c8cf1"}
+)
+
+
+def _uses_classic_title(text: str) -> bool:
+    """True when any run of 2-3 words in ``text`` hashes to one of the classic titles."""
+    import hashlib
+    import re
+
+    words = re.findall(r"[a-z0-9_]+", text.lower())
+    for size in (2, 3):
+        for i in range(len(words) - size + 1):
+            digest = hashlib.sha256(" ".join(words[i : i + size]).encode()).hexdigest()[:20]
+            if digest in CLASSIC_TITLE_HASHES:
+                return True
+    return False
 
 
 # ----------------------------------------------------------------------- builders
@@ -344,10 +362,10 @@ def test_no_title_or_text_uses_the_classic_panel_titles(ctx: CheckContext) -> No
     for kind in FIGURE_KINDS:
         for fig in drawn(kind.name, ctx, findings):
             for text in all_texts(fig):
-                assert not any(title in text.lower() for title in CLASSIC_TITLES), text
+                assert not _uses_classic_title(text), text
     for planned in plan_figures(ctx, findings):
         caption, alt = planned.kind.describe(planned.data, planned.finding)
-        assert not any(t in (caption + alt).lower() for t in CLASSIC_TITLES)
+        assert not _uses_classic_title(caption + " " + alt)
 
 
 def _is_red(colour: str) -> bool:

@@ -30,7 +30,7 @@ from premises import analysis, lsq
 from premises.changes import _ordered, compare_results
 from premises.checks.influence import bonferroni_p
 from premises.checks.linearity import reset_from_fit, reset_test
-from premises.checks.variance import breusch_pagan, check_variance, white_test
+from premises.checks.variance import breusch_pagan, assess_variance, white_test
 from premises.fit import fit_model
 from premises.formula import Design, build_design
 from premises.pipeline import parse_document
@@ -208,7 +208,7 @@ def test_white_is_skipped_above_the_cell_budget(monkeypatch: pytest.MonkeyPatch,
     doc, _ = _project(tmp_path, 400, 3)
     monkeypatch.setattr(variance, "WHITE_MAX_CELLS", 1000)
     spec = _spec(doc)
-    finding = _finding(spec, doc, check_variance)
+    finding = _finding(spec, doc, assess_variance)
     assert not any(s.name == "White LM" for s in finding.statistics)
     assert any("White's test was skipped" in note and "400 rows" in note for note in finding.notes)
 

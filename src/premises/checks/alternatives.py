@@ -115,9 +115,9 @@ def _se_kind(ctx: CheckContext) -> str:
             return "cluster"
         if "variance" not in ctx.spec.checks:
             return "classical"
-        from premises.checks.variance import check_variance
+        from premises.checks.variance import assess_variance
 
-        return "HC3" if dict(check_variance(ctx).extra).get("hc3_advised") else "classical"
+        return "HC3" if dict(assess_variance(ctx).extra).get("hc3_advised") else "classical"
     return {"classical": "classical", "hc3": "HC3", "cluster": "cluster"}[se]
 
 

@@ -17,7 +17,7 @@ import numpy as np
 from premises.checks.base import CheckContext
 from premises.results import Finding, Statistic, ThresholdUse, Verdict
 
-__all__ = ["VIOLATED_FACTOR", "check_collinearity", "generalised_vif", "vif_from_correlation"]
+__all__ = ["VIOLATED_FACTOR", "assess_collinearity", "generalised_vif", "vif_from_correlation"]
 
 VIOLATED_FACTOR = 10.0
 """VIF at this multiple of the declared threshold (100 by default: standard
@@ -99,7 +99,7 @@ def _structural(ctx: CheckContext, high: list[str]) -> bool:
     )
 
 
-def check_collinearity(ctx: CheckContext) -> Finding:
+def assess_collinearity(ctx: CheckContext) -> Finding:
     """Assess collinearity among the predictor terms.
 
     ``not-assessed`` with fewer than two predictor terms. Verdict: ``concern``

@@ -29,7 +29,7 @@ __all__ = [
     "DEFF_VIOLATED",
     "FEW_CLUSTERS",
     "breusch_godfrey",
-    "check_independence",
+    "assess_independence",
     "cluster_summary",
     "group_values",
     "order_values",
@@ -365,7 +365,7 @@ def _cluster_part(ctx: CheckContext, e: np.ndarray, groups: np.ndarray) -> _Part
     return part
 
 
-def check_independence(ctx: CheckContext) -> Finding:
+def assess_independence(ctx: CheckContext) -> Finding:
     """Assess independence along the declared ``order`` and within the declared ``groups``.
 
     ``not-assessed`` when neither is declared. Verdicts: |lag-1 autocorrelation|

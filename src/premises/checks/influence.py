@@ -26,7 +26,7 @@ __all__ = [
     "SHIFT_VIOLATED",
     "Cutoffs",
     "bonferroni_p",
-    "check_influence",
+    "assess_influence",
     "evaluate_cutoffs",
     "flag_points",
     "isolated_leverage",
@@ -347,7 +347,7 @@ def _grade(shift: float, undefined: bool, unusual: bool) -> Verdict:
     return "concern" if shift >= SHIFT_CONCERN and unusual else "holds"
 
 
-def check_influence(ctx: CheckContext) -> Finding:
+def assess_influence(ctx: CheckContext) -> Finding:
     """Assess whether single observations steer the coefficients.
 
     Verdict: ``violated`` when a point has leverage 1 or moves a coefficient by

@@ -25,7 +25,7 @@ __all__ = [
     "HARVEY_COLLIER_MAX_N",
     "SHARE_CONCERN",
     "SHARE_VIOLATED",
-    "check_linearity",
+    "assess_linearity",
     "harvey_collier",
     "predictor_curves",
     "reset_from_fit",
@@ -191,7 +191,7 @@ def _grade(share: float, evidence: bool) -> Verdict:
     return "violated" if share >= SHARE_VIOLATED else "concern"
 
 
-def check_linearity(ctx: CheckContext) -> Finding:
+def assess_linearity(ctx: CheckContext) -> Finding:
     """Assess linearity from smooths of the residuals.
 
     The measure is the largest adjusted share of residual variance explained by

@@ -22,7 +22,7 @@ __all__ = [
     "TAIL_CONCERN",
     "TAIL_VIOLATED",
     "anderson_darling",
-    "check_normality",
+    "assess_normality",
     "qq_data",
     "shapiro_wilk",
     "tail_deviation",
@@ -154,7 +154,7 @@ def _describe(tail: float, at: float, skew: float) -> str:
     return shape
 
 
-def check_normality(ctx: CheckContext) -> Finding:
+def assess_normality(ctx: CheckContext) -> Finding:
     """Assess normality of the errors from the internally studentized residuals.
 
     Verdict: ``concern`` when the tail deviation is at least :data:`TAIL_CONCERN`
@@ -167,7 +167,7 @@ def check_normality(ctx: CheckContext) -> Finding:
     n = z.size
     name = f"fig-{ctx.spec.id}-normality"
     method = (
-        "Normality of the errors was assessed from a normal Q-Q plot of the studentized residuals, "
+        "Normality of the errors was assessed from a Q-Q plot of the studentized residuals against normal quantiles, "
         "the largest gap between their quantiles and normal quantiles over the central 98% "
         "(in robust standard deviations), skewness and excess kurtosis, and the Shapiro-Wilk and "
         "Anderson-Darling tests"

@@ -14,7 +14,7 @@ from premises.checks.base import CheckContext
 from premises.errors import ModelError
 from premises.results import Finding, Statistic, ThresholdUse
 
-__all__ = ["BOUND_SHARE", "SMALL_COUNT_MEAN", "check_outcome", "describe_outcome"]
+__all__ = ["BOUND_SHARE", "SMALL_COUNT_MEAN", "assess_outcome", "describe_outcome"]
 
 SMALL_COUNT_MEAN = 10.0
 """Counts with a mean below this are too skewed and discrete for a normal linear
@@ -88,7 +88,7 @@ def describe_outcome(y: np.ndarray) -> dict[str, float | bool]:
     }
 
 
-def check_outcome(ctx: CheckContext) -> Finding:
+def assess_outcome(ctx: CheckContext) -> Finding:
     """Check that the outcome suits a linear model for its mean.
 
     Raises :class:`ModelError` for a two-valued or categorical outcome (with the

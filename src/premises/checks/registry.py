@@ -1,7 +1,7 @@
 """The check table: one row per assumption, in reporting order.
 
 Importing this module fills :data:`premises.checks.base.REGISTRY`. A new check
-is one module with a ``check_<name>(ctx) -> Finding`` function, one template
+is one module with a ``assess_<name>(ctx) -> Finding`` function, one template
 and one row here; the contract tests (tests/test_check_contract.py) cover it
 without new tests.
 """
@@ -9,24 +9,24 @@ without new tests.
 from __future__ import annotations
 
 from premises.checks.base import REGISTRY, CheckEntry
-from premises.checks.collinearity import check_collinearity
-from premises.checks.independence import check_independence
-from premises.checks.influence import check_influence
-from premises.checks.linearity import check_linearity
-from premises.checks.normality import check_normality
-from premises.checks.outcome import check_outcome
-from premises.checks.variance import check_variance
+from premises.checks.collinearity import assess_collinearity
+from premises.checks.independence import assess_independence
+from premises.checks.influence import assess_influence
+from premises.checks.linearity import assess_linearity
+from premises.checks.normality import assess_normality
+from premises.checks.outcome import assess_outcome
+from premises.checks.variance import assess_variance
 
 __all__ = ["ENTRIES"]
 
 ENTRIES: tuple[CheckEntry, ...] = (
-    CheckEntry("outcome", check_outcome, "Outcome type", "checks/outcome.md.j2", has_figure=False),
-    CheckEntry("linearity", check_linearity, "Linearity", "checks/linearity.md.j2"),
-    CheckEntry("normality", check_normality, "Normality of residuals", "checks/normality.md.j2"),
-    CheckEntry("variance", check_variance, "Equal variance", "checks/variance.md.j2"),
-    CheckEntry("influence", check_influence, "Influential observations", "checks/influence.md.j2"),
-    CheckEntry("independence", check_independence, "Independence", "checks/independence.md.j2"),
-    CheckEntry("collinearity", check_collinearity, "Collinearity", "checks/collinearity.md.j2"),
+    CheckEntry("outcome", assess_outcome, "Outcome type", "checks/outcome.md.j2", has_figure=False),
+    CheckEntry("linearity", assess_linearity, "Linearity", "checks/linearity.md.j2"),
+    CheckEntry("normality", assess_normality, "Normality of residuals", "checks/normality.md.j2"),
+    CheckEntry("variance", assess_variance, "Equal variance", "checks/variance.md.j2"),
+    CheckEntry("influence", assess_influence, "Influential observations", "checks/influence.md.j2"),
+    CheckEntry("independence", assess_independence, "Independence", "checks/independence.md.j2"),
+    CheckEntry("collinearity", assess_collinearity, "Collinearity", "checks/collinearity.md.j2"),
 )
 """Registered checks in reporting order."""
 

@@ -22,7 +22,7 @@ __all__ = [
     "SPREAD_CONCERN",
     "SPREAD_VIOLATED",
     "breusch_pagan",
-    "check_variance",
+    "assess_variance",
     "factor_spread",
     "full_rank_columns",
     "spread_ratio",
@@ -231,7 +231,7 @@ def _grade(ratio: float, evidence: bool) -> Verdict:
     return "violated" if ratio >= SPREAD_VIOLATED else "concern"
 
 
-def check_variance(ctx: CheckContext) -> Finding:
+def assess_variance(ctx: CheckContext) -> Finding:
     """Assess equal variance of the residuals.
 
     Verdict: ``concern`` when the spread ratio between the top and bottom thirds
