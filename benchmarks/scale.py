@@ -183,7 +183,10 @@ def run_child(command: list[str], cwd: Path, limit: float) -> Run:
         if child.returncode != 0:
             errors.seek(0)
             text = errors.read().decode(errors="replace")
-            print(f"  failed ({child.returncode}): {' '.join(command)}\n{text[-2000:]}", file=sys.stderr)
+            print(
+                f"  failed ({child.returncode}): {' '.join(command)}\n{text[-2000:]}",
+                file=sys.stderr,
+            )
             return Run(None, None, "failed")
     # ru_maxrss is in KiB on Linux (bytes on macOS).
     scale = 1024 if sys.platform != "darwin" else 1
@@ -270,9 +273,13 @@ def main() -> None:
     parser.add_argument("--sizes", type=_parse_sizes, default=SIZES, help="e.g. 1e3,1e4,1e5,1e6")
     parser.add_argument("--predictors", type=_parse_sizes, default=PREDICTORS, help="e.g. 3,10")
     parser.add_argument("--quick", action="store_true", help="n = 10^3 and 10^4 only, p = 3")
-    parser.add_argument("--limit", type=float, default=LIMIT, help="seconds before a run is stopped")
+    parser.add_argument(
+        "--limit", type=float, default=LIMIT, help="seconds before a run is stopped"
+    )
     parser.add_argument("--repeat", type=int, default=1, help="runs per cell (median)")
-    parser.add_argument("--work", type=Path, help="folder for data and outputs (default: temporary)")
+    parser.add_argument(
+        "--work", type=Path, help="folder for data and outputs (default: temporary)"
+    )
     parser.add_argument("--markdown", type=Path, help="also write the table to this file")
     parser.add_argument("--no-hand", action="store_true", help="skip the hand-written pipeline")
     args = parser.parse_args()
@@ -293,11 +300,26 @@ def main() -> None:
             for p in predictors:
                 document = write_document(work, data, p)
                 tool = median_run(
-                    [sys.executable, "-m", "premises", "render", document.name, "--no-cache",
-                     "-o", f"{document.stem}.out.md"],
-                    work, args.limit, args.repeat,
+                    [
+                        sys.executable,
+                        "-m",
+                        "premises",
+                        "render",
+                        document.name,
+                        "--no-cache",
+                        "-o",
+                        f"{document.stem}.out.md",
+                    ],
+                    work,
+                    args.limit,
+                    args.repeat,
                 )
-                base = median_run([sys.executable, "baseline.py", data.name, str(p)], work, args.limit, args.repeat)
+                base = median_run(
+                    [sys.executable, "baseline.py", data.name, str(p)],
+                    work,
+                    args.limit,
+                    args.repeat,
+                )
                 if args.no_hand:
                     hand = Run(None, None, "not run")
                 elif p in stopped:
@@ -305,7 +327,12 @@ def main() -> None:
                 else:
                     panels = work / f"hand_{n}_{p}"
                     panels.mkdir(exist_ok=True)
-                    hand = median_run([sys.executable, "hand.py", data.name, str(p), panels.name], work, args.limit, 1)
+                    hand = median_run(
+                        [sys.executable, "hand.py", data.name, str(p), panels.name],
+                        work,
+                        args.limit,
+                        1,
+                    )
                     if hand.status == "did not finish":
                         stopped[p] = n
                 row = table_row(n, p, tool, base, hand, args.limit)

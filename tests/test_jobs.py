@@ -28,20 +28,28 @@ def _project(folder: Path, models: dict[str, str] = BLOCKS) -> Path:
     folder.mkdir(parents=True, exist_ok=True)
     rng = np.random.default_rng(11)
     n = 90
-    frame = pd.DataFrame({"x1": rng.standard_normal(n), "x2": rng.standard_normal(n), "x3": rng.gamma(2.0, 1.0, n)})
+    frame = pd.DataFrame(
+        {"x1": rng.standard_normal(n), "x2": rng.standard_normal(n), "x3": rng.gamma(2.0, 1.0, n)}
+    )
     frame["g"] = rng.integers(0, 6, n)
     frame["y"] = 1.0 + frame["x1"] - 0.5 * frame["x2"] + 0.2 * frame["x3"] + rng.standard_normal(n)
     frame.to_csv(folder / "data.csv", index=False)
     parts = ["---\ntitle: Jobs\n---\n"]
     for block, body in models.items():
-        parts.append(f"\n## {block}\n\n```{{.premises}}\nid: {block}\ndata: data.csv\n{body}\n```\n")
+        parts.append(
+            f"\n## {block}\n\n```{{.premises}}\nid: {block}\ndata: data.csv\n{body}\n```\n"
+        )
     doc = folder / "report.md"
     doc.write_text("".join(parts), encoding="utf-8")
     return doc
 
 
 def _files(folder: Path) -> dict[str, bytes]:
-    return {p.relative_to(folder).as_posix(): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file() and ".premises" not in p.parts}
+    return {
+        p.relative_to(folder).as_posix(): p.read_bytes()
+        for p in sorted(folder.rglob("*"))
+        if p.is_file() and ".premises" not in p.parts
+    }
 
 
 def test_worker_count() -> None:
@@ -52,7 +60,9 @@ def test_worker_count() -> None:
 
 
 @pytest.mark.parametrize("use_cache", [False, True])
-def test_three_blocks_render_byte_identically_with_one_and_two_jobs(tmp_path: Path, use_cache: bool) -> None:
+def test_three_blocks_render_byte_identically_with_one_and_two_jobs(
+    tmp_path: Path, use_cache: bool
+) -> None:
     outputs = {}
     for jobs in (1, 2):
         doc = _project(tmp_path / f"jobs{jobs}")
@@ -78,20 +88,31 @@ def test_an_error_in_a_worker_keeps_its_location_and_hint(tmp_path: Path) -> Non
     assert type(parallel.value) is type(serial.value)
     assert parallel.value.location == serial.value.location
     assert parallel.value.location.block == "dose" and parallel.value.location.key == "model"
-    assert (parallel.value.problem, parallel.value.hint) == (serial.value.problem, serial.value.hint)
+    assert (parallel.value.problem, parallel.value.hint) == (
+        serial.value.problem,
+        serial.value.hint,
+    )
 
 
 def _cli(doc: Path, *args: str) -> subprocess.CompletedProcess[str]:
     env = dict(os.environ, PYTHONPATH=str(SRC))
     return subprocess.run(
         [sys.executable, "-m", "premises", "render", doc.name, "--no-cache", *args],
-        cwd=doc.parent, capture_output=True, text=True, env=env, check=False,
+        cwd=doc.parent,
+        capture_output=True,
+        text=True,
+        env=env,
+        check=False,
     )
 
 
 def test_cli_reports_the_first_failing_block_once_with_exit_2(tmp_path: Path) -> None:
     # Two blocks fail; a serial render stops at the first in document order, so must a parallel one.
-    models = {"growth": BLOCKS["growth"], "dose": "model: y ~ x1 + nowhere", "site": "model: y ~ x2 + alsonot"}
+    models = {
+        "growth": BLOCKS["growth"],
+        "dose": "model: y ~ x1 + nowhere",
+        "site": "model: y ~ x2 + alsonot",
+    }
     serial_doc = _project(tmp_path / "serial", models)
     parallel_doc = _project(tmp_path / "parallel", models)
     serial = _cli(serial_doc)
@@ -117,4 +138,6 @@ def test_jobs_zero_means_one_per_cpu_and_renders_the_same(tmp_path: Path) -> Non
     assert _cli(one).returncode == 0
     done = _cli(auto, "--jobs", "0")
     assert done.returncode == 0, done.stderr
-    assert (one.parent / "report.premises.md").read_bytes() == (auto.parent / "report.premises.md").read_bytes()
+    assert (one.parent / "report.premises.md").read_bytes() == (
+        auto.parent / "report.premises.md"
+    ).read_bytes()

@@ -30,7 +30,7 @@ from premises import analysis, lsq
 from premises.changes import _ordered, compare_results
 from premises.checks.influence import bonferroni_p
 from premises.checks.linearity import reset_from_fit, reset_test
-from premises.checks.variance import breusch_pagan, assess_variance, white_test
+from premises.checks.variance import assess_variance, breusch_pagan, white_test
 from premises.fit import fit_model
 from premises.formula import Design, build_design
 from premises.pipeline import parse_document
@@ -47,10 +47,16 @@ def _design(x: np.ndarray, y: np.ndarray) -> Design:
     n, k = x.shape
     names = ("Intercept",) + tuple(f"c{j}" for j in range(1, k + 1))
     return Design(
-        "y ~ " + " + ".join(names[1:]), "y", ("y",), names[1:], y,
-        np.column_stack([np.ones(n), x]), names,
+        "y ~ " + " + ".join(names[1:]),
+        "y",
+        ("y",),
+        names[1:],
+        y,
+        np.column_stack([np.ones(n), x]),
+        names,
         tuple((name, j, j + 1) for j, name in enumerate(names)),
-        (("Intercept", ()),) + tuple((name, (name,)) for name in names[1:]), True,
+        (("Intercept", ()),) + tuple((name, (name,)) for name in names[1:]),
+        True,
     )
 
 
@@ -59,14 +65,22 @@ def _project(tmp: Path, n: int, p: int, seed: int = 3) -> tuple[Path, pd.DataFra
     rng = np.random.default_rng(seed)
     x = rng.standard_normal((n, p))
     site = rng.integers(0, 200, n)
-    y = 1.0 + x @ np.linspace(1.0, -1.0, p) + 0.3 * rng.standard_normal(200)[site] + rng.standard_normal(n)
+    y = (
+        1.0
+        + x @ np.linspace(1.0, -1.0, p)
+        + 0.3 * rng.standard_normal(200)[site]
+        + rng.standard_normal(n)
+    )
     frame = pd.DataFrame(x, columns=[f"x{j}" for j in range(1, p + 1)])
     frame.insert(0, "y", y)
     frame["site"] = site
     frame.to_parquet(tmp / "data.parquet", index=False)
     terms = " + ".join(f"x{j}" for j in range(1, p + 1))
     doc = tmp / "doc.md"
-    doc.write_text(f"# t\n\n```{{.premises}}\nid: t\ndata: data.parquet\nmodel: y ~ {terms}\ngroups: site\n```\n", encoding="utf-8")
+    doc.write_text(
+        f"# t\n\n```{{.premises}}\nid: t\ndata: data.parquet\nmodel: y ~ {terms}\ngroups: site\n```\n",
+        encoding="utf-8",
+    )
     return doc, frame
 
 
@@ -84,7 +98,9 @@ def test_help_takes_under_half_a_second() -> None:
     runs = []
     for _ in range(3):
         start = time.perf_counter()
-        done = subprocess.run([sys.executable, "-m", "premises", "--help"], capture_output=True, env=env, check=False)
+        done = subprocess.run(
+            [sys.executable, "-m", "premises", "--help"], capture_output=True, env=env, check=False
+        )
         runs.append(time.perf_counter() - start)
         assert done.returncode == 0, done.stderr
     assert statistics.median(runs) < 0.5, runs
@@ -106,7 +122,9 @@ def test_gram_lstsq_matches_numpy_and_declines_dependent_columns() -> None:
     assert lsq.gram_lstsq(np.column_stack([x, np.zeros(500)]), y) is None
 
 
-def test_double_precision_refinement_of_a_large_design_matches_statsmodels(monkeypatch: pytest.MonkeyPatch) -> None:
+def test_double_precision_refinement_of_a_large_design_matches_statsmodels(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
     rng = np.random.default_rng(1)
     n = 20_000
     x = rng.standard_normal((n, 6)) * [1.0, 10.0, 100.0, 1.0, 0.1, 3.0] + 50.0
@@ -124,10 +142,14 @@ def test_double_precision_refinement_of_a_large_design_matches_statsmodels(monke
     np.testing.assert_allclose(fast.resid, extended.resid, rtol=0, atol=1e-10 * np.std(y))
 
 
-def test_ill_conditioned_designs_keep_the_extended_refinement(monkeypatch: pytest.MonkeyPatch) -> None:
+def test_ill_conditioned_designs_keep_the_extended_refinement(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
     monkeypatch.setattr(lsq, "EXTENDED_MAX_CELLS", 0)
     t = np.linspace(0.0, 1.0, 400)
-    x = np.column_stack([t**k for k in range(1, 8)])  # a raw polynomial: condition ~1e7 after scaling
+    x = np.column_stack(
+        [t**k for k in range(1, 8)]
+    )  # a raw polynomial: condition ~1e7 after scaling
     factor = lsq.factorise(np.column_stack([np.ones(400), x]), tuple(f"c{k}" for k in range(8)))
     assert np.linalg.cond(factor.r) > lsq.EXTENDED_MAX_CONDITION
     assert factor._needs_extended()
@@ -137,7 +159,9 @@ def test_ill_conditioned_designs_keep_the_extended_refinement(monkeypatch: pytes
 def test_coef_rows_are_the_rows_of_the_inverse_times_the_design(weighted: bool) -> None:
     rng = np.random.default_rng(2)
     n = 300
-    x = np.column_stack([rng.standard_normal(n), np.ones(n), rng.standard_normal((n, 2)) + 5.0])  # intercept not first
+    x = np.column_stack(
+        [rng.standard_normal(n), np.ones(n), rng.standard_normal((n, 2)) + 5.0]
+    )  # intercept not first
     w = rng.uniform(0.5, 2.0, n) if weighted else None
     factor = lsq.factorise(x, ("a", "Intercept", "b", "c"), w)
     sw = np.sqrt(w) if w is not None else np.ones(n)
@@ -151,7 +175,9 @@ def test_residualise_removes_the_design_from_a_vector() -> None:
     x = np.column_stack([np.ones(200), rng.standard_normal((200, 3))])
     v = rng.standard_normal((200, 2))
     factor = lsq.factorise(x, ("Intercept", "a", "b", "c"))
-    expected = v - x @ np.linalg.lstsq(x, v, rcond=None)[0]  # numpy's least squares as the reference
+    expected = (
+        v - x @ np.linalg.lstsq(x, v, rcond=None)[0]
+    )  # numpy's least squares as the reference
     np.testing.assert_allclose(factor.residualise(v), expected, atol=1e-12)
     np.testing.assert_allclose(factor.residualise(v[:, 0]), expected[:, 0], atol=1e-12)
 
@@ -166,7 +192,9 @@ def test_reset_from_the_fit_matches_statsmodels() -> None:
     y = 1.0 + x @ [2.0, -1.0, 0.5] + 0.2 * x[:, 0] ** 2 + rng.standard_normal(n)
     design = _design(x, y)
     ours = reset_from_fit(fit_model(design))
-    reference = linear_reset(sm.OLS(y, design.X).fit(), power=3, test_type="fitted", use_f=True)  # statsmodels
+    reference = linear_reset(
+        sm.OLS(y, design.X).fit(), power=3, test_type="fitted", use_f=True
+    )  # statsmodels
     assert ours["f"] == pytest.approx(float(reference.fvalue), rel=1e-9)
     assert ours["p"] == pytest.approx(float(reference.pvalue), rel=1e-6)
     assert (ours["df1"], ours["df2"]) == (2.0, n - 6.0)
@@ -178,7 +206,9 @@ def test_reset_from_the_fit_matches_statsmodels() -> None:
 
 def test_reset_from_the_fit_drops_powers_the_design_spans() -> None:
     rng = np.random.default_rng(6)
-    dummy = rng.integers(0, 2, 150).astype(float)  # two fitted values: their powers lie in the design
+    dummy = rng.integers(0, 2, 150).astype(
+        float
+    )  # two fitted values: their powers lie in the design
     design = _design(dummy[:, None], 1.0 + dummy + rng.standard_normal(150))
     found = reset_from_fit(fit_model(design))
     assert found["df1"] == 0.0 and np.isnan(found["f"])
@@ -202,7 +232,9 @@ def test_breusch_pagan_and_white_match_statsmodels() -> None:
     assert white["df"] == 9.0
 
 
-def test_white_is_skipped_above_the_cell_budget(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
+def test_white_is_skipped_above_the_cell_budget(
+    monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
     from premises.checks import variance
 
     doc, _ = _project(tmp_path, 400, 3)
@@ -219,9 +251,23 @@ def _finding(spec, doc: Path, check):  # type: ignore[no-untyped-def]
     from premises.ledger import apply_ledger
 
     prepared = analysis.prepare_block(spec, doc.parent, analysis.AnalysisOptions())
-    outcome = apply_ledger(spec, prepared.table.frame, prepared.ids, prepared.formula_columns, analysis._formula_transforms(spec))
+    outcome = apply_ledger(
+        spec,
+        prepared.table.frame,
+        prepared.ids,
+        prepared.formula_columns,
+        analysis._formula_transforms(spec),
+    )
     _, fit = analysis._fit(spec, outcome)
-    ctx = CheckContext(spec, fit, compute_influence(fit), outcome.frame, np.asarray(outcome.ids, dtype=object), outcome.rows, spec.seed)
+    ctx = CheckContext(
+        spec,
+        fit,
+        compute_influence(fit),
+        outcome.frame,
+        np.asarray(outcome.ids, dtype=object),
+        outcome.rows,
+        spec.seed,
+    )
     return check(ctx)
 
 
@@ -238,7 +284,9 @@ def test_bonferroni_p_equals_the_direct_formula() -> None:
 # ----------------------------------------------------------------------------- the block
 
 
-def test_flagged_refit_on_design_rows_equals_the_ledger_refit(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
+def test_flagged_refit_on_design_rows_equals_the_ledger_refit(
+    monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
     doc, frame = _project(tmp_path, 300, 3)
     frame.loc[[5, 77, 140], "y"] += 12.0  # outliers, so points are flagged
     frame.to_parquet(tmp_path / "data.parquet", index=False)
@@ -247,7 +295,9 @@ def test_flagged_refit_on_design_rows_equals_the_ledger_refit(monkeypatch: pytes
         quick = analysis.analyse_block(spec, doc.parent, Path(out), "f", analysis.AnalysisOptions())
     monkeypatch.setattr(analysis, "_rows_refit_exactly", lambda spec, design: False)
     with tempfile.TemporaryDirectory() as out:
-        rebuilt = analysis.analyse_block(spec, doc.parent, Path(out), "f", analysis.AnalysisOptions())
+        rebuilt = analysis.analyse_block(
+            spec, doc.parent, Path(out), "f", analysis.AnalysisOptions()
+        )
     assert quick.flagged
     assert any(r.label == "flagged points removed" for r in quick.sensitivity)
     assert quick.sensitivity == rebuilt.sensitivity
@@ -263,14 +313,20 @@ def test_refits_rebuild_the_design_when_rows_change_it(tmp_path: Path) -> None:
     assert not analysis._rows_refit_exactly(spec, build_design("y ~ x1 + C(g)", frame))
 
 
-def test_analysed_ids_are_left_out_above_the_limit(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
+def test_analysed_ids_are_left_out_above_the_limit(
+    monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
     doc, _ = _project(tmp_path, 40, 2)
     spec = _spec(doc)
     with tempfile.TemporaryDirectory() as out:
-        small = to_jsonable(analysis.analyse_block(spec, doc.parent, Path(out), "f", analysis.AnalysisOptions()))
+        small = to_jsonable(
+            analysis.analyse_block(spec, doc.parent, Path(out), "f", analysis.AnalysisOptions())
+        )
     monkeypatch.setattr(analysis, "ANALYSED_IDS_MAX", 10)
     with tempfile.TemporaryDirectory() as out:
-        large = to_jsonable(analysis.analyse_block(spec, doc.parent, Path(out), "f", analysis.AnalysisOptions()))
+        large = to_jsonable(
+            analysis.analyse_block(spec, doc.parent, Path(out), "f", analysis.AnalysisOptions())
+        )
     assert len(small["analysed_ids"]) == 40 and large["analysed_ids"] == []
     # The change log then says which rows entered or left only when both renders listed them.
     assert compare_results(small, large).rows_added is None
@@ -317,18 +373,27 @@ def test_per_observation_tables_round_trip_through_the_store(tmp_path: Path) -> 
     frame.loc[3, "x1"] = np.nan  # a missing row, blank in the tables
     frame.to_parquet(tmp_path / "data.parquet", index=False)
     text = doc.read_text(encoding="utf-8").replace(
-        "groups: site\n", "groups: site\nexclude:\n  - when: x2 > 1.5\n    reason: outside the range studied\n"
+        "groups: site\n",
+        "groups: site\nexclude:\n  - when: x2 > 1.5\n    reason: outside the range studied\n",
     )
     doc.write_text(text, encoding="utf-8")
     options = RenderOptions(cache_dir=tmp_path / "store")
     render_file(doc, options=options)
-    fresh = diagnostics_rows(doc, RenderOptions(use_cache=False)), ledger_rows(doc, RenderOptions(use_cache=False))
-    first = diagnostics_rows(doc, options), ledger_rows(doc, options)  # computed, kept beside the entry
+    fresh = (
+        diagnostics_rows(doc, RenderOptions(use_cache=False)),
+        ledger_rows(doc, RenderOptions(use_cache=False)),
+    )
+    first = (
+        diagnostics_rows(doc, options),
+        ledger_rows(doc, options),
+    )  # computed, kept beside the entry
     stored = list((tmp_path / "store").rglob("observations.npz"))
     assert len(stored) == 1
     second = diagnostics_rows(doc, options), ledger_rows(doc, options)  # read back
     assert fresh == first == second
-    assert any(row.get("studentized") is None for row in second[1][1])  # the missing row: blank measures
+    assert any(
+        row.get("studentized") is None for row in second[1][1]
+    )  # the missing row: blank measures
     found = Observations.from_npz(stored[0].read_bytes())
     assert Observations.from_npz(found.to_npz()) == found
     empty = Observations(("1",), (), ("id", "row", "fitted"), (), None, ())
